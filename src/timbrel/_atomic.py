@@ -1,0 +1,55 @@
+"""Write files so that a crash never leaves one that reads as complete."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+from typing import IO
+
+TEMP_SUFFIX = ".part"
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | Path) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; rename it onto ``path`` when the block succeeds.
+
+    The temporary file is removed if the block raises. Data are flushed to disk before
+    the rename so the rename publishes a complete file.
+    """
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        with open(tmp_path, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp_path, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            tmp_path.unlink()
+        raise
+
+
+@contextlib.contextmanager
+def atomic_open(path: str | Path, mode: str = "w", **kwargs: object) -> Iterator[IO]:
+    """Open a temporary file beside ``path`` for writing; publish it on success."""
+    with atomic_path(path) as tmp, open(tmp, mode, **kwargs) as fh:  # type: ignore[call-overload]
+        yield fh
+
+
+def remove_stale_temporaries(folder: str | Path) -> int:
+    """Delete temporary files a crashed run left in ``folder``; return how many."""
+    removed = 0
+    folder = Path(folder)
+    if not folder.is_dir():
+        return 0
+    for entry in folder.iterdir():
+        if entry.name.startswith(".") and entry.name.endswith(TEMP_SUFFIX):
+            with contextlib.suppress(OSError):
+                entry.unlink()
+                removed += 1
+    return removed

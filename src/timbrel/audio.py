@@ -1,0 +1,324 @@
+"""Finding and reading audio: folders and manifests in, mono float32 blocks out.
+
+A *source* is either a folder (searched recursively, in a deterministic order)
+or a manifest CSV whose ``path`` column names files relative to the CSV's own
+folder; every other manifest column (``label``, ``split``, ...) is carried
+through to every output. Files are decoded with libsndfile (soundfile) in blocks,
+so memory stays bounded whatever a file's length, mixed down to mono (or one
+channel kept) and resampled with soxr at high quality.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import math
+import os
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+
+import numpy as np
+import soundfile as sf
+
+from ._errors import AudioReadError, ParameterError
+
+__all__ = [
+    "AUDIO_EXTENSIONS",
+    "AudioItem",
+    "AudioInfo",
+    "discover",
+    "read_blocks",
+    "read_info",
+    "load",
+]
+
+#: Extensions a folder search picks up (case-insensitive); libsndfile decides what it reads.
+AUDIO_EXTENSIONS = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".aifc", ".mp3")
+
+#: Seconds of audio decoded per block: bounds memory for any file length.
+BLOCK_SECONDS = 20.0
+
+
+@dataclasses.dataclass(frozen=True)
+class AudioItem:
+    """One clip to process.
+
+    Attributes
+    ----------
+    path : Path
+        Absolute path of the file.
+    source : str
+        Path relative to the source root, with ``/`` separators; the clip's name in
+        every output. Undecodable bytes in a file name appear as ``\\xNN`` escapes
+        (see :func:`display_name`).
+    extra : Mapping[str, str]
+        Manifest columns other than ``path`` (empty for a folder source).
+    """
+
+    path: Path
+    source: str
+    extra: Mapping[str, str] = dataclasses.field(default_factory=dict)
+
+
+@dataclasses.dataclass(frozen=True)
+class AudioInfo:
+    """What the file header says: rate, channels, frames, duration."""
+
+    sample_rate: int
+    channels: int
+    frames: int
+
+    @property
+    def duration(self) -> float:
+        """Seconds of audio at the file's own rate."""
+        return self.frames / self.sample_rate if self.sample_rate else 0.0
+
+
+def display_name(text: str) -> str:
+    """A printable, UTF-8-safe form of a path that may hold undecodable bytes.
+
+    Undecodable bytes become ``\\xNN`` escapes, so distinct names stay distinct.
+    """
+    return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
+def discover(source: str | Path, *, allow_outside: bool = False) -> tuple[list[AudioItem], list[str]]:
+    """List the clips of a folder or a manifest CSV.
+
+    Parameters
+    ----------
+    source : str or Path
+        A folder (searched recursively for :data:`AUDIO_EXTENSIONS`, sorted by
+        relative path) or a ``.csv`` manifest with a ``path`` column.
+    allow_outside : bool, default False
+        Accept manifest paths that lead outside the manifest's folder (absolute
+        paths, ``..``). Refused by default so a manifest cannot make timbrel read
+        arbitrary files.
+
+    Returns
+    -------
+    items : list of AudioItem
+        The clips, in a deterministic order.
+    extra_columns : list of str
+        Manifest columns carried through (empty for a folder).
+
+    Raises
+    ------
+    ParameterError
+        If the source does not exist, the manifest lacks a ``path`` column, repeats
+        a path, or names a path outside its folder without ``allow_outside``.
+    """
+    root = Path(source)
+    if root.is_dir():
+        return _discover_folder(root), []
+    if root.is_file() and root.suffix.lower() == ".csv":
+        return _discover_manifest(root, allow_outside=allow_outside)
+    if root.is_file():
+        raise ParameterError(f"{root}: a source must be a folder or a manifest .csv")
+    raise ParameterError(f"{root}: no such folder or manifest")
+
+
+def _discover_folder(root: Path) -> list[AudioItem]:
+    items = []
+    seen_dirs: set[tuple[int, int]] = set()
+    # os.walk with followlinks would loop on a symlink cycle; track (device, inode).
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
+        st = os.stat(dirpath)
+        if (st.st_dev, st.st_ino) in seen_dirs:
+            dirnames[:] = []
+            continue
+        seen_dirs.add((st.st_dev, st.st_ino))
+        dirnames.sort()
+        for name in filenames:
+            if os.path.splitext(name)[1].lower() in AUDIO_EXTENSIONS:
+                path = Path(dirpath) / name
+                rel = display_name(path.relative_to(root).as_posix())
+                items.append(AudioItem(path=path.absolute(), source=rel))
+        # a directory named like an audio file is reported by the reader, not skipped silently
+        for name in dirnames:
+            if os.path.splitext(name)[1].lower() in AUDIO_EXTENSIONS:
+                path = Path(dirpath) / name
+                items.append(AudioItem(path=path.absolute(),
+                                       source=display_name(path.relative_to(root).as_posix())))
+    items.sort(key=lambda item: item.source)
+    return items
+
+
+def _discover_manifest(manifest: Path, *, allow_outside: bool) -> tuple[list[AudioItem], list[str]]:
+    base = manifest.parent.resolve()
+    try:
+        with open(manifest, newline="", encoding="utf-8") as fh:
+            reader = csv.DictReader(fh)
+            columns = list(reader.fieldnames or [])
+            rows = list(reader)
+    except UnicodeDecodeError:
+        raise ParameterError(f"{manifest}: manifest is not UTF-8 text") from None
+    except (OSError, csv.Error) as exc:
+        raise ParameterError(f"{manifest}: cannot read manifest ({exc})") from None
+    if "path" not in columns:
+        raise ParameterError(f"{manifest}: manifest has no 'path' column (columns: {columns})")
+    extra_columns = [c for c in columns if c != "path"]
+    items = []
+    seen: set[str] = set()
+    for line, row in enumerate(rows, start=2):
+        rel = (row.get("path") or "").strip()
+        if not rel:
+            raise ParameterError(f"{manifest}:{line}: empty path")
+        target = (base / rel).resolve() if not os.path.isabs(rel) else Path(rel).resolve()
+        inside = target == base or base in target.parents
+        if not os.path.isabs(rel) and inside:
+            source = Path(os.path.normpath(rel)).as_posix()
+        else:
+            if not allow_outside:
+                raise ParameterError(
+                    f"{manifest}:{line}: path {rel!r} leads outside the manifest's folder "
+                    f"{base}; pass the option that allows outside paths if this is intended")
+            source = target.as_posix()
+        if source in seen:
+            raise ParameterError(f"{manifest}:{line}: path {rel!r} is listed twice")
+        seen.add(source)
+        extra = {c: (row.get(c) or "") for c in extra_columns}
+        items.append(AudioItem(path=(base / rel) if not os.path.isabs(rel) else Path(rel),
+                               source=source, extra=extra))
+    return items, extra_columns
+
+
+def read_info(path: str | Path) -> AudioInfo:
+    """Read a file's header.
+
+    Raises
+    ------
+    AudioReadError
+        If the file is missing, unreadable, empty, not audio or has no samples.
+    """
+    path = Path(path)
+    _check_readable(path)
+    try:
+        # open the file ourselves: libsndfile cannot open names that are not UTF-8
+        with open(path, "rb") as raw:
+            info = sf.info(raw)
+    except OSError as exc:
+        raise AudioReadError(display_name(str(path)), f"cannot read ({exc.strerror})") from None
+    except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
+        raise AudioReadError(display_name(str(path)), _decoder_reason(exc)) from None
+    if info.samplerate <= 0:
+        raise AudioReadError(display_name(str(path)), f"invalid sample rate {info.samplerate}")
+    if info.frames <= 0:
+        raise AudioReadError(display_name(str(path)), "holds no samples")
+    return AudioInfo(sample_rate=int(info.samplerate), channels=int(info.channels),
+                     frames=int(info.frames))
+
+
+def _check_readable(path: Path) -> None:
+    name = display_name(str(path))
+    if path.is_dir():
+        raise AudioReadError(name, "is a folder, not an audio file")
+    try:
+        size = path.stat().st_size
+    except FileNotFoundError:
+        raise AudioReadError(name, "no such file") from None
+    except OSError as exc:
+        raise AudioReadError(name, f"cannot read ({exc.strerror})") from None
+    if size == 0:
+        raise AudioReadError(name, "empty file (0 bytes)")
+    if not os.access(path, os.R_OK):
+        raise AudioReadError(name, "permission denied")
+
+
+def _decoder_reason(exc: BaseException) -> str:
+    text = str(exc).strip()
+    # libsndfile's messages repeat the path; keep the reason only.
+    if ":" in text and "Error opening" in text:
+        text = text.rsplit(":", 1)[-1].strip()
+    return f"not readable as audio ({text or type(exc).__name__})"
+
+
+def read_blocks(
+    path: str | Path,
+    *,
+    sr: int,
+    channel: int = -1,
+    block_seconds: float = BLOCK_SECONDS,
+) -> Iterator[np.ndarray]:
+    """Decode a file in blocks, as mono float32 at ``sr``.
+
+    Parameters
+    ----------
+    path : str or Path
+        Audio file libsndfile can read.
+    sr : int > 0
+        Output sample rate; soxr resamples at high quality ("HQ") when the file's
+        rate differs. Resampling is streamed, so the concatenated blocks equal a
+        whole-file resample up to soxr's own streaming precision.
+    channel : int, default -1
+        ``-1`` averages all channels (downmix); ``k >= 0`` keeps channel ``k``.
+    block_seconds : float > 0, default 20.0
+        Seconds of input decoded at once; bounds memory.
+
+    Yields
+    ------
+    block : np.ndarray, shape (n,), float32
+        Consecutive pieces of the clip. Empty blocks are never yielded.
+
+    Raises
+    ------
+    AudioReadError
+        Naming the file and the reason: unreadable, not audio, no samples, a
+        missing channel, NaN or infinite samples, or a stream cut short.
+    """
+    if sr <= 0:
+        raise ParameterError(f"sr = {sr} must be positive")
+    if block_seconds <= 0:
+        raise ParameterError(f"block_seconds = {block_seconds} must be positive")
+    path = Path(path)
+    name = display_name(str(path))
+    info = read_info(path)
+    if channel >= info.channels:
+        raise AudioReadError(name, f"has {info.channels} channel(s); channel {channel} requested")
+    blocksize = max(1, int(math.ceil(block_seconds * info.sample_rate)))
+    resampler = None
+    if info.sample_rate != sr:
+        import soxr  # deferred: only needed when rates differ
+
+        resampler = soxr.ResampleStream(info.sample_rate, sr, 1, dtype="float32", quality="HQ")
+    n_read = 0
+    try:
+        with open(path, "rb") as raw, sf.SoundFile(raw) as fh:
+            while True:
+                try:
+                    block = fh.read(blocksize, dtype="float32", always_2d=True)
+                except (sf.LibsndfileError, RuntimeError) as exc:
+                    raise AudioReadError(name, f"decoding failed after {n_read} frames "
+                                         f"({exc})") from None
+                last = block.shape[0] < blocksize
+                if block.shape[0]:
+                    n_read += block.shape[0]
+                    mono = block.mean(axis=1) if channel < 0 else block[:, channel]
+                    mono = np.ascontiguousarray(mono, dtype=np.float32)
+                    if not np.isfinite(mono).all():
+                        raise AudioReadError(name, "contains NaN or infinite samples")
+                    if resampler is not None:
+                        mono = resampler.resample_chunk(mono, last=last)
+                    if mono.size:
+                        yield mono
+                elif resampler is not None:
+                    tail = resampler.resample_chunk(np.zeros(0, np.float32), last=True)
+                    if tail.size:
+                        yield tail
+                if last:
+                    break
+    except (sf.LibsndfileError, RuntimeError) as exc:
+        raise AudioReadError(name, _decoder_reason(exc)) from None
+    if n_read == 0:
+        raise AudioReadError(name, "holds no samples")
+
+
+def load(path: str | Path, *, sr: int, channel: int = -1) -> np.ndarray:
+    """Read a whole file as one mono float32 array at ``sr`` (see :func:`read_blocks`).
+
+    Returns
+    -------
+    y : np.ndarray, shape (n_samples,), float32
+    """
+    blocks = list(read_blocks(path, sr=sr, channel=channel))
+    return np.concatenate(blocks) if blocks else np.zeros(0, np.float32)

@@ -1,0 +1,495 @@
+"""The frame cache: log-mel frames of every clip, computed once, memory-mappable.
+
+Layout of a cache folder::
+
+    cache.json              completion marker: format, config snapshot, band statistics,
+                            totals and the name of the current index (written last)
+    index-<id>.parquet      one row per clip (schema: :data:`INDEX_SCHEMA` + manifest columns)
+    shards/<id>.f32         raw float32 frames of the clips of one worker task, row-major,
+                            shape (n_frames, n_mels)
+    shards/<id>.json        the shard's clip entries, written after the shard is complete
+    failures.csv            files that could not be used, with the reason
+
+Every file is written under a temporary name and renamed when complete; ``cache.json``
+is renamed last, so a crash never leaves a cache that reads as complete. A re-run reuses
+every clip whose file (path, size, modification time) and frame settings are unchanged,
+including clips finished by a run that crashed.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import contextlib
+import csv
+import dataclasses
+import json
+import os
+import time
+import uuid
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import __version__
+from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
+from ._errors import AudioReadError, CacheError, ParameterError
+from ._progress import progress_bar
+from .audio import AudioItem, discover, display_name, read_blocks, read_info
+from .config import Config, FrontEndConfig
+from .frontend import BandStats, FrontEnd
+
+__all__ = ["CacheSummary", "ClipFailure", "FrameCache", "INDEX_SCHEMA", "build_cache"]
+
+CACHE_FORMAT = "timbrel-frame-cache"
+CACHE_VERSION = 1
+MARKER = "cache.json"
+FAILURES = "failures.csv"
+
+#: Columns every index has; manifest columns follow as strings.
+INDEX_SCHEMA = pa.schema([
+    pa.field("clip", pa.int32(), nullable=False),
+    pa.field("source", pa.string(), nullable=False),
+    pa.field("shard", pa.string(), nullable=False),
+    pa.field("offset", pa.int64(), nullable=False),
+    pa.field("n_frames", pa.int64(), nullable=False),
+    pa.field("duration_s", pa.float64(), nullable=False),
+    pa.field("sample_rate", pa.int32(), nullable=False),
+    pa.field("channels", pa.int32(), nullable=False),
+    pa.field("file_size", pa.int64(), nullable=False),
+    pa.field("mtime_ns", pa.int64(), nullable=False),
+])
+
+#: Files per worker task: each task writes one shard.
+FILES_PER_TASK = 16
+
+
+@dataclasses.dataclass(frozen=True)
+class ClipFailure:
+    """A file that could not be used, and why."""
+
+    source: str
+    reason: str
+
+
+@dataclasses.dataclass
+class CacheSummary:
+    """What :func:`build_cache` did."""
+
+    path: Path
+    n_files: int
+    n_clips: int
+    n_reused: int
+    n_frames: int
+    audio_seconds: float
+    wall_seconds: float
+    failures: list[ClipFailure]
+
+    @property
+    def n_failed(self) -> int:
+        """Files that could not be used."""
+        return len(self.failures)
+
+    def line(self) -> str:
+        """One-line summary for a person."""
+        text = (f"{self.n_clips} of {self.n_files} files cached ({self.n_reused} reused), "
+                f"{self.n_frames} frames, {self.audio_seconds / 3600:.3f} h of audio "
+                f"in {self.wall_seconds:.1f} s")
+        if self.failures:
+            text += f"; {self.n_failed} FAILED (see {self.path / FAILURES})"
+        return text
+
+
+def _file_key(item: AudioItem) -> tuple[int, int]:
+    st = os.stat(item.path)
+    return int(st.st_size), int(st.st_mtime_ns)
+
+
+def _clip_key(source: str, size: int, mtime_ns: int, frame_key: str) -> str:
+    return f"{frame_key}|{size}|{mtime_ns}|{source}"
+
+
+def _process_task(task: dict[str, Any]) -> dict[str, Any]:
+    """Worker: frame a group of files into one shard; return its entries and failures."""
+    _limit_threads()
+    fe_config = FrontEndConfig(**task["frontend"])
+    frontend = FrontEnd(fe_config)
+    shard_dir = Path(task["shard_dir"])
+    shard_id = task["shard_id"]
+    entries: list[dict[str, Any]] = []
+    failures: list[tuple[str, str]] = []
+    frames_path = shard_dir / f"{shard_id}.f32"
+    with atomic_path(frames_path) as tmp, open(tmp, "wb") as fh:
+        offset = 0
+        for job in task["files"]:
+            start = fh.tell()
+            try:
+                entry = _frame_one(job, frontend, fh)
+            except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
+                fh.seek(start)
+                fh.truncate(start)
+                reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
+                failures.append((job["source"], reason))
+                continue
+            entry["offset"] = offset
+            offset += entry["n_frames"]
+            entries.append(entry)
+        fh.flush()
+    sidecar = {"format": CACHE_FORMAT, "n_mels": fe_config.n_mels,
+               "frame_key": task["frame_key"], "clips": entries}
+    with atomic_open(shard_dir / f"{shard_id}.json", "w", encoding="utf-8") as out:
+        json.dump(sidecar, out)
+    return {"shard": shard_id, "entries": entries, "failures": failures}
+
+
+def _frame_one(job: dict[str, Any], frontend: FrontEnd, fh: Any) -> dict[str, Any]:
+    path = Path(job["path"])
+    c = frontend.config
+    info = read_info(path)
+    n_frames = 0
+    n_samples = 0
+    blocks = read_blocks(path, sr=c.sample_rate, channel=c.channel)
+
+    def counted() -> Iterator[np.ndarray]:
+        nonlocal n_samples
+        for block in blocks:
+            n_samples += block.size
+            yield block
+
+    for frames in frontend.stream(counted(), c.sample_rate):
+        fh.write(np.ascontiguousarray(frames, np.float32).tobytes())
+        n_frames += len(frames)
+    if n_frames == 0:
+        raise AudioReadError(display_name(str(path)),
+                             f"shorter than one analysis window ({n_samples} samples at "
+                             f"{c.sample_rate} Hz < n_fft {c.fft_length})")
+    return {"source": job["source"], "key": job["key"], "n_frames": n_frames,
+            "duration_s": info.duration, "sample_rate": info.sample_rate,
+            "channels": info.channels, "file_size": job["size"], "mtime_ns": job["mtime_ns"]}
+
+
+def _limit_threads() -> None:
+    # One BLAS thread per worker process: the pool already uses every core.
+    with contextlib.suppress(Exception):
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+
+
+def _read_sidecars(shard_dir: Path, frame_key: str) -> dict[str, dict[str, Any]]:
+    """Clip entries of every complete shard with these frame settings, by clip key."""
+    pool: dict[str, dict[str, Any]] = {}
+    if not shard_dir.is_dir():
+        return pool
+    for meta in sorted(shard_dir.glob("*.json")):
+        try:
+            data = json.loads(meta.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        if data.get("format") != CACHE_FORMAT or data.get("frame_key") != frame_key:
+            continue
+        frames_path = meta.with_suffix(".f32")
+        if not frames_path.is_file():
+            continue
+        n_total = frames_path.stat().st_size // (4 * int(data["n_mels"]))
+        for entry in data["clips"]:
+            if entry["offset"] + entry["n_frames"] <= n_total:
+                pool[entry["key"]] = {**entry, "shard": meta.stem}
+    return pool
+
+
+def build_cache(
+    source: str | Path,
+    out: str | Path,
+    *,
+    config: Config | None = None,
+    workers: int | None = None,
+    allow_outside: bool = False,
+    progress: bool = False,
+) -> CacheSummary:
+    """Compute the log-mel frames of every clip in ``source`` into a cache folder.
+
+    Parameters
+    ----------
+    source : str or Path
+        A folder of audio files or a manifest CSV (see :func:`timbrel.audio.discover`).
+    out : str or Path
+        Cache folder; created if missing. An existing cache there is updated:
+        unchanged clips are reused, clips no longer in the source are dropped.
+    config : Config, optional
+        Defaults to :class:`timbrel.config.Config()`.
+    workers : int, optional
+        Worker processes; default: the number of CPU cores. ``1`` runs in-process.
+    allow_outside : bool, default False
+        Accept manifest paths outside the manifest's folder.
+    progress : bool, default False
+        Show a progress bar on standard error.
+
+    Returns
+    -------
+    CacheSummary
+        Counts, frames, audio duration, wall time and the failed files. Failed files
+        are also listed in ``out/failures.csv``; good files are cached regardless.
+
+    Raises
+    ------
+    ParameterError
+        If the source is missing or malformed, or ``out`` is not a usable folder.
+    """
+    t0 = time.perf_counter()
+    config = config or Config()
+    fe = config.frontend
+    frame_key = fe.frame_key()
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise ParameterError(f"{out}: output exists and is not a folder")
+    items, extra_columns = discover(source, allow_outside=allow_outside)
+    shard_dir = out / "shards"
+    shard_dir.mkdir(parents=True, exist_ok=True)
+    remove_stale_temporaries(out)
+    remove_stale_temporaries(shard_dir)
+
+    pool = _read_sidecars(shard_dir, frame_key)
+    failures: dict[str, str] = {}
+    entries: dict[str, dict[str, Any]] = {}
+    todo: list[dict[str, Any]] = []
+    for item in items:
+        try:
+            size, mtime_ns = _file_key(item)
+        except OSError as exc:
+            failures[item.source] = f"cannot read ({exc.strerror})"
+            continue
+        key = _clip_key(item.source, size, mtime_ns, frame_key)
+        if key in pool:
+            entries[item.source] = pool[key]
+        else:
+            todo.append({"path": os.fsdecode(item.path), "source": item.source, "key": key,
+                         "size": size, "mtime_ns": mtime_ns})
+    n_reused = len(entries)
+    tasks = [{"frontend": dataclasses.asdict(fe), "frame_key": frame_key,
+              "shard_dir": str(shard_dir), "shard_id": uuid.uuid4().hex[:16],
+              "files": todo[i:i + FILES_PER_TASK]} for i in range(0, len(todo), FILES_PER_TASK)]
+    workers = max(1, workers or os.cpu_count() or 1)
+
+    with progress_bar(progress) as bar:
+        task_id = bar.add_task("frames", total=len(items), info="")
+        bar.advance(task_id, n_reused + len(failures))
+        done_seconds = 0.0
+        for result in _run_tasks(tasks, workers):
+            for entry in result["entries"]:
+                entries[entry["source"]] = {**entry, "shard": result["shard"]}
+                done_seconds += entry["duration_s"]
+            for src, reason in result["failures"]:
+                failures[src] = reason
+            elapsed = time.perf_counter() - t0
+            n_done = len(result["entries"]) + len(result["failures"])
+            bar.advance(task_id, n_done)
+            bar.update(task_id, info=f"{done_seconds / 3600:.2f} h audio, "
+                       f"{done_seconds / max(elapsed, 1e-9):.0f}x realtime")
+
+    by_source = {item.source: item for item in items}
+    ordered = [src for src in (item.source for item in items) if src in entries]
+    stats = BandStats(fe.n_mels)
+    columns: dict[str, list[Any]] = {name: [] for name in INDEX_SCHEMA.names}
+    extra: dict[str, list[str]] = {name: [] for name in extra_columns}
+    for clip, src in enumerate(ordered):
+        entry = entries[src]
+        for name in INDEX_SCHEMA.names:
+            columns[name].append(clip if name == "clip" else entry[name])
+        for name in extra_columns:
+            extra[name].append(by_source[src].extra.get(name, ""))
+    index = pa.table({**columns, **extra}, schema=_index_schema(extra_columns))
+    cache_view = FrameCache(out, index=index, n_mels=fe.n_mels)
+    for clip in range(len(ordered)):
+        stats.update(cache_view.clip_frames(clip))
+
+    index_name = f"index-{uuid.uuid4().hex[:16]}.parquet"
+    with atomic_path(out / index_name) as tmp:
+        pq.write_table(index, tmp, compression="zstd")
+    failure_list = [ClipFailure(display_name(s), r) for s, r in sorted(failures.items())]
+    _write_failures(out / FAILURES, failure_list)
+    n_frames = int(sum(entries[s]["n_frames"] for s in ordered))
+    audio_seconds = float(sum(entries[s]["duration_s"] for s in ordered))
+    marker = {
+        "format": CACHE_FORMAT, "version": CACHE_VERSION, "timbrel": __version__,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "source": os.fsdecode(Path(source).absolute()), "index": index_name,
+        "config": config.to_dict(), "frame_key": frame_key,
+        "n_clips": len(ordered), "n_frames": n_frames, "audio_seconds": audio_seconds,
+        "n_failed": len(failure_list), "band_stats": stats.to_dict(),
+        "extra_columns": extra_columns,
+    }
+    with atomic_open(out / MARKER, "w", encoding="utf-8") as fh:
+        json.dump(marker, fh, indent=1)
+    _collect_garbage(out, keep_index=index_name,
+                     keep_shards={entries[s]["shard"] for s in ordered})
+    return CacheSummary(path=out, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
+                        n_frames=n_frames, audio_seconds=audio_seconds,
+                        wall_seconds=time.perf_counter() - t0, failures=failure_list)
+
+
+def _run_tasks(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
+    if workers == 1 or len(tasks) <= 1:
+        for task in tasks:
+            yield _process_task(task)
+        return
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
+        futures = [ex.submit(_process_task, task) for task in tasks]
+        for future in concurrent.futures.as_completed(futures):
+            yield future.result()
+
+
+def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:
+    schema = INDEX_SCHEMA
+    for name in extra_columns:
+        schema = schema.append(pa.field(name, pa.string()))
+    return schema
+
+
+def _write_failures(path: Path, failures: list[ClipFailure]) -> None:
+    with atomic_open(path, "w", encoding="utf-8", newline="") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["source", "reason"])
+        for failure in failures:
+            writer.writerow([failure.source, failure.reason])
+
+
+def _collect_garbage(out: Path, *, keep_index: str, keep_shards: set[str]) -> None:
+    for old in out.glob("index-*.parquet"):
+        if old.name != keep_index:
+            with contextlib.suppress(OSError):
+                old.unlink()
+    for shard in (out / "shards").glob("*.f32"):
+        if shard.stem not in keep_shards:
+            with contextlib.suppress(OSError):
+                shard.unlink()
+                shard.with_suffix(".json").unlink()
+
+
+class FrameCache:
+    """Read access to a complete frame cache.
+
+    Use :meth:`open`. Frames are memory-mapped, so a cache larger than RAM is fine.
+
+    Attributes
+    ----------
+    path : Path
+    index : pyarrow.Table
+        One row per clip (see :data:`INDEX_SCHEMA`), plus manifest columns.
+    config : Config
+        The configuration the frames were made with.
+    band_stats : BandStats
+        Per-band statistics over every cached frame.
+    extra_columns : list of str
+        Manifest columns carried through.
+    """
+
+    def __init__(self, path: Path, *, index: pa.Table, n_mels: int,
+                 marker: dict[str, Any] | None = None) -> None:
+        self.path = Path(path)
+        self.index = index
+        self.n_mels = n_mels
+        self.marker = marker or {}
+        self._shards = index.column("shard").to_pylist()
+        self._offsets = np.asarray(index.column("offset").to_numpy(), np.int64)
+        self._counts = np.asarray(index.column("n_frames").to_numpy(), np.int64)
+        self._maps: dict[str, np.memmap] = {}
+
+    @classmethod
+    def open(cls, path: str | Path) -> FrameCache:
+        """Open a cache folder made by :func:`build_cache`.
+
+        Raises
+        ------
+        CacheError
+            If the folder is missing, incomplete (no marker: a run never finished),
+            of another format or version, or a shard is missing or short.
+        """
+        path = Path(path)
+        marker_path = path / MARKER
+        if not path.is_dir():
+            raise CacheError(f"{path}: no such frame cache folder")
+        if not marker_path.is_file():
+            raise CacheError(f"{path}: not a complete frame cache (no {MARKER}; "
+                             "build it with the frames command)")
+        try:
+            marker = json.loads(marker_path.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as exc:
+            raise CacheError(f"{marker_path}: unreadable ({exc})") from None
+        if marker.get("format") != CACHE_FORMAT:
+            raise CacheError(f"{marker_path}: not a timbrel frame cache")
+        if int(marker.get("version", 0)) > CACHE_VERSION:
+            raise CacheError(f"{marker_path}: cache format version {marker['version']} is newer "
+                             f"than this timbrel reads ({CACHE_VERSION}); upgrade timbrel")
+        try:
+            index = pq.read_table(path / marker["index"])
+        except (OSError, pa.ArrowException) as exc:
+            raise CacheError(f"{path / marker['index']}: unreadable index ({exc})") from None
+        n_mels = int(marker["config"]["frontend"]["n_mels"])
+        cache = cls(path, index=index, n_mels=n_mels, marker=marker)
+        cache._check_shards()
+        return cache
+
+    def _check_shards(self) -> None:
+        need: dict[str, int] = {}
+        for shard, offset, count in zip(self._shards, self._offsets, self._counts, strict=True):
+            need[shard] = max(need.get(shard, 0), int(offset + count))
+        for shard, rows in need.items():
+            frames_path = self.path / "shards" / f"{shard}.f32"
+            if not frames_path.is_file():
+                raise CacheError(f"{frames_path}: shard missing; rebuild the cache")
+            if frames_path.stat().st_size < rows * self.n_mels * 4:
+                raise CacheError(f"{frames_path}: shard shorter than its index says; "
+                                 "rebuild the cache")
+
+    @property
+    def config(self) -> Config:
+        """The configuration the cache was made with."""
+        return Config.from_dict(self.marker["config"], source=str(self.path / MARKER))
+
+    @property
+    def band_stats(self) -> BandStats:
+        """Per-band statistics over every cached frame."""
+        return BandStats.from_dict(self.marker["band_stats"])
+
+    @property
+    def extra_columns(self) -> list[str]:
+        """Manifest columns carried through."""
+        return list(self.marker.get("extra_columns", []))
+
+    @property
+    def n_frames(self) -> int:
+        """Frames in the whole cache."""
+        return int(self._counts.sum())
+
+    @property
+    def frame_counts(self) -> np.ndarray:
+        """Frames per clip, shape (n_clips,), int64."""
+        return self._counts.copy()
+
+    def __len__(self) -> int:
+        return len(self._counts)
+
+    def sources(self) -> list[str]:
+        """Clip names (paths relative to the source root), in clip order."""
+        return self.index.column("source").to_pylist()
+
+    def clip_frames(self, clip: int) -> np.ndarray:
+        """Log-mel frames of one clip, shape (n_frames, n_mels), float32, read-only memory map."""
+        if not 0 <= clip < len(self._counts):
+            raise ParameterError(f"clip = {clip} is outside [0, {len(self._counts)})")
+        shard = self._shards[clip]
+        mm = self._maps.get(shard)
+        if mm is None:
+            frames_path = self.path / "shards" / f"{shard}.f32"
+            rows = frames_path.stat().st_size // (4 * self.n_mels)
+            mm = np.memmap(frames_path, dtype=np.float32, mode="r", shape=(rows, self.n_mels))
+            self._maps[shard] = mm
+        start = int(self._offsets[clip])
+        return mm[start:start + int(self._counts[clip])]

@@ -1,0 +1,80 @@
+"""Tests of the command line (typer's CliRunner): exit codes and the one-line errors."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import soundfile as sf
+from typer.testing import CliRunner
+
+from timbrel import __version__
+from timbrel.cli import EXIT_FAILED_FILES, app, main
+
+runner = CliRunner()
+
+
+@pytest.fixture
+def audio_dir(tmp_path):
+    folder = tmp_path / "audio"
+    folder.mkdir()
+    rng = np.random.default_rng(3)
+    for i in range(3):
+        sf.write(folder / f"a{i}.wav", 0.1 * rng.standard_normal(16000), 16000)
+    (folder / "bad.wav").write_bytes(b"not audio at all")
+    return folder
+
+
+def test_version():
+    result = runner.invoke(app, ["--version"])
+    assert result.exit_code == 0
+    assert result.output.strip() == f"timbrel {__version__}"
+
+
+def test_frames_builds_a_cache_and_reports_failures(tmp_path, audio_dir):
+    result = runner.invoke(app, ["frames", str(audio_dir), "--out", str(tmp_path / "c"), "-q",
+                                 "-j", "1"])
+    assert result.exit_code == 0, result.output
+    assert "3 of 4 files cached" in result.output
+    assert "failed: bad.wav: not readable as audio" in result.output
+    assert (tmp_path / "c" / "cache.json").is_file()
+
+
+def test_strict_exits_with_the_documented_code(tmp_path, audio_dir):
+    result = runner.invoke(app, ["frames", str(audio_dir), "--out", str(tmp_path / "c"), "-q",
+                                 "-j", "1", "--strict"])
+    assert result.exit_code == EXIT_FAILED_FILES == 3
+
+
+@pytest.mark.parametrize(("args", "fragment"), [
+    (["--set", "frontend.n_mels=0"], "frontend.n_mels = 0 is outside the allowed range"),
+    (["--set", "frontend.window=box"], "frontend.window = 'box' is not one of"),
+])
+def test_bad_config_is_one_clear_line(tmp_path, audio_dir, args, fragment):
+    result = runner.invoke(app, ["frames", str(audio_dir), "--out", str(tmp_path / "c"), "-q",
+                                 *args])
+    assert result.exit_code == 1
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert lines == [f"timbrel: error: {lines[0].split('error: ', 1)[1]}"]
+    assert fragment in lines[0]
+    assert "Traceback" not in result.output
+
+
+def test_missing_source_is_one_line(tmp_path):
+    code = main(["frames", str(tmp_path / "nowhere"), "--out", str(tmp_path / "c"), "-q"])
+    assert code == 1
+
+
+def test_usage_error_exit_code(tmp_path, audio_dir):
+    result = runner.invoke(app, ["frames", str(audio_dir), "--out", str(tmp_path / "c"),
+                                 "--workers", "0"])
+    assert result.exit_code == 2
+
+
+def test_python_dash_m_runs_the_same_command():
+    result = subprocess.run([sys.executable, "-m", "timbrel", "--help"], capture_output=True,
+                            text=True, timeout=120)
+    assert result.returncode == 0
+    assert "frames" in result.stdout
