@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from timbrel import BandStats, FrontEnd, ParameterError, mel_filter_bank, stack_context
-from timbrel.frontend import hz_to_mel, mel_to_hz
+from timbrel.frontend import ContextStacker, context_rows, hz_to_mel, mel_to_hz
 
 
 @pytest.fixture
@@ -205,3 +205,28 @@ def test_from_toml(tmp_path):
     fe = FrontEnd.from_toml(path)
     assert fe.n_mels == 24 and fe.config.mel_scale == "htk"
     assert fe.filter_bank.shape == (24, 257)
+
+
+@settings(max_examples=40, deadline=None)
+@given(n=st.integers(0, 40), context=st.integers(0, 4), cuts=st.lists(st.integers(0, 40)))
+def test_context_stacker_and_rows_equal_whole_stacking(n, context, cuts):
+    # streaming and random-access stacking agree with stack_context on the whole clip
+    frames = np.random.default_rng(n).standard_normal((n, 3)).astype(np.float32)
+    whole = stack_context(frames, context) if n else np.empty((0, 3 * (2 * context + 1)))
+    bounds = sorted({0, n, *[c for c in cuts if c <= n]})
+    stacker = ContextStacker(context)
+    out = [stacker.push(frames[a:b]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+    out.append(stacker.finish())
+    got = np.concatenate([o for o in out if len(o)]) if n else np.empty_like(whole)
+    np.testing.assert_array_equal(got, whole)
+    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+        np.testing.assert_array_equal(context_rows(frames, a, b, context), whole[a:b])
+
+
+def test_standardise_uses_band_statistics_and_spares_constant_bands():
+    frames = np.column_stack([np.arange(10.0), np.full(10, 4.0)])
+    stats = BandStats.of(frames)
+    z = stats.standardise(frames)
+    assert z.dtype == np.float32
+    np.testing.assert_allclose(z[:, 0], (frames[:, 0] - 4.5) / frames[:, 0].std(), rtol=1e-6)
+    np.testing.assert_array_equal(z[:, 1], 0.0)

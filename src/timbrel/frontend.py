@@ -18,6 +18,7 @@ from .config import FrontEndConfig, load_config
 
 __all__ = [
     "BandStats",
+    "ContextStacker",
     "FrontEnd",
     "hz_to_mel",
     "mel_filter_bank",
@@ -309,6 +310,75 @@ def stack_context(frames: np.ndarray, context: int) -> np.ndarray:
     return np.ascontiguousarray(windows.reshape(n, (2 * context + 1) * m))
 
 
+def context_rows(frames: np.ndarray, start: int, stop: int, context: int) -> np.ndarray:
+    """Context vectors of rows ``[start, stop)`` of one clip's frames.
+
+    Equals ``stack_context(frames, context)[start:stop]`` but touches only the rows it
+    needs (frames may be a memory map of a long clip).
+
+    Returns
+    -------
+    np.ndarray, shape (stop - start, (2 * context + 1) * n_bands)
+    """
+    n = len(frames)
+    if not 0 <= start <= stop <= n:
+        raise ParameterError(f"rows [{start}, {stop}) outside a clip of {n} frames")
+    lo, hi = max(0, start - context), min(n, stop + context)
+    piece = np.asarray(frames[lo:hi])
+    stacked = stack_context(piece, context)
+    # rows near a cut that is not a clip edge saw replicated frames; they are not returned
+    return stacked[start - lo: start - lo + (stop - start)]
+
+
+class ContextStacker:
+    """Streaming :func:`stack_context`: feed a clip's frames in blocks, get rows in order.
+
+    Rows come out ``context`` frames late (they need their right-hand neighbours);
+    :meth:`finish` returns the rest, with the clip's last frame repeated at the end.
+    The concatenation of every output equals ``stack_context(all_frames, context)``.
+    """
+
+    def __init__(self, context: int) -> None:
+        if context < 0:
+            raise ParameterError(f"context = {context} must be >= 0")
+        self.context = context
+        self._tail: np.ndarray | None = None  # last 2*context frames seen (or fewer)
+        self._emitted = 0
+        self._seen = 0
+
+    def push(self, frames: np.ndarray) -> np.ndarray:
+        """Add frames (k, n_bands); return the rows now complete, shape (j, width)."""
+        frames = np.asarray(frames)
+        k = self.context
+        if self._tail is None:
+            if len(frames) == 0:
+                return np.empty((0, (2 * k + 1) * frames.shape[1]), frames.dtype)
+            # the clip's first frame repeated k times stands left of the clip
+            self._tail = np.repeat(frames[:1], k, axis=0)
+        buf = np.concatenate([self._tail, frames])
+        self._seen += len(frames)
+        ready = len(buf) - 2 * k  # rows whose whole window is in buf
+        if ready <= 0:
+            self._tail = buf
+            return np.empty((0, (2 * k + 1) * buf.shape[1]), buf.dtype)
+        rows = stack_context(buf, k)[k:k + ready] if k else buf.copy()
+        self._tail = buf[ready:]
+        self._emitted += ready
+        return rows
+
+    def finish(self) -> np.ndarray:
+        """Rows still pending, with the last frame repeated on the right."""
+        k = self.context
+        if self._tail is None or self._emitted == self._seen:
+            width = 0 if self._tail is None else (2 * k + 1) * self._tail.shape[1]
+            return np.empty((0, width), np.float32 if self._tail is None else self._tail.dtype)
+        buf = np.concatenate([self._tail, np.repeat(self._tail[-1:], k, axis=0)])
+        pending = self._seen - self._emitted
+        rows = stack_context(buf, k)[k:k + pending]
+        self._emitted = self._seen
+        return rows
+
+
 class BandStats:
     """Streaming per-band mean and standard deviation, mergeable across workers.
 
@@ -374,6 +444,23 @@ class BandStats:
         if self.count == 0:
             return np.full_like(self.mean, np.nan)
         return np.sqrt(self.m2 / self.count)
+
+    #: Bands whose standard deviation is below this are not rescaled (constant bands).
+    std_floor = 1e-6
+
+    @property
+    def scale(self) -> np.ndarray:
+        """Divisor used to standardise: ``std``, or 1 where a band is (nearly) constant."""
+        std = self.std
+        return np.where(std > self.std_floor, std, 1.0)
+
+    def standardise(self, frames: np.ndarray) -> np.ndarray:
+        """``(frames - mean) / scale`` as float32, shape unchanged (n_frames, n_bands)."""
+        frames = np.asarray(frames)
+        out = frames.astype(np.float32, copy=True)
+        out -= self.mean.astype(np.float32)
+        out /= self.scale.astype(np.float32)
+        return out
 
     def to_dict(self) -> dict[str, object]:
         """JSON-able form."""
