@@ -1,0 +1,553 @@
+"""Export: per-frame hidden activations to a Parquet dataset, locally or on a Dask cluster.
+
+A dataset is a folder of part files that pyarrow, DuckDB, pandas, polars and Spark read as
+one table, one row per frame::
+
+    DATASET/part-<id>.parquet    frames of a group of clips (schema: :func:`frame_schema`)
+    DATASET/_clips/part-<id>.parquet
+                                 with ``pool``: one row per clip, pooled features
+    DATASET/_export.json         the run record: model checksum, layout, finished sources
+    DATASET/_failures.csv        files that could not be used, with the reason
+
+Names starting with ``_`` or ``.`` are skipped by dataset readers. Each part is written
+under a temporary ``.``-name and renamed when complete, and lists its clips in its own
+metadata; a re-run skips every clip already in a part, so an export killed at any point
+and started again ends with every frame exactly once.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import contextlib
+import csv
+import dataclasses
+import hashlib
+import json
+import os
+import shutil
+import time
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import __version__
+from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
+from ._errors import AudioReadError, ExportError, ParameterError
+from ._progress import progress_bar
+from .audio import AudioItem, discover, display_name, read_blocks, read_info
+from .cache import MARKER as CACHE_MARKER
+from .cache import FrameCache
+from .config import Config
+from .frontend import ContextStacker, FrontEnd
+from .training import FeaturePipeline, load_pipeline
+
+__all__ = ["ExportSummary", "LAYOUTS", "POOLS", "export", "frame_schema", "clip_schema"]
+
+LAYOUTS = ("vector", "wide")
+POOLS = ("mean", "max", "std")
+RECORD = "_export.json"
+FAILURES = "_failures.csv"
+CLIPS_DIR = "_clips"
+LOCK = ".lock"
+METADATA_KEY = b"timbrel"
+#: Target uncompressed size of one row group: large enough for fast scans, small enough
+#: that a reader can work on one group at a time.
+ROW_GROUP_BYTES = 32 * 1024 * 1024
+FILES_PER_TASK = 8
+
+
+def _column_names(n_hidden: int) -> list[str]:
+    width = max(4, len(str(n_hidden - 1)))
+    return [f"h{j:0{width}d}" for j in range(n_hidden)]
+
+
+def frame_schema(n_hidden: int, extra_columns: Sequence[str] = (), *,
+                 layout: str = "vector", metadata: dict[bytes, bytes] | None = None) -> pa.Schema:
+    """The Arrow schema of the per-frame table.
+
+    Columns: ``source`` (string), ``frame`` (int32), ``start_s`` (float64), then
+    ``features`` (fixed-size list of float32, ``n_hidden`` long) for ``layout="vector"``
+    or one float32 column per hidden unit (``h0000``, ``h0001``, ...) for ``"wide"``,
+    then the manifest columns as strings.
+    """
+    fields = [pa.field("source", pa.string(), nullable=False),
+              pa.field("frame", pa.int32(), nullable=False),
+              pa.field("start_s", pa.float64(), nullable=False)]
+    if layout == "vector":
+        fields.append(pa.field("features", pa.list_(pa.float32(), n_hidden), nullable=False))
+    elif layout == "wide":
+        fields.extend(pa.field(name, pa.float32(), nullable=False)
+                      for name in _column_names(n_hidden))
+    else:
+        raise ParameterError(f"layout = {layout!r} is not one of {LAYOUTS}")
+    fields.extend(pa.field(name, pa.string()) for name in extra_columns)
+    return pa.schema(fields, metadata=metadata)
+
+
+def clip_schema(n_hidden: int, pools: Sequence[str], extra_columns: Sequence[str] = (),
+                *, metadata: dict[bytes, bytes] | None = None) -> pa.Schema:
+    """The Arrow schema of the clip table: ``source``, ``n_frames``, ``duration_s``, one
+    fixed-size float32 list per pooling (``mean``, ``max``, ``std``), manifest columns."""
+    fields = [pa.field("source", pa.string(), nullable=False),
+              pa.field("n_frames", pa.int64(), nullable=False),
+              pa.field("duration_s", pa.float64(), nullable=False)]
+    fields.extend(pa.field(p, pa.list_(pa.float32(), n_hidden), nullable=False) for p in pools)
+    fields.extend(pa.field(name, pa.string()) for name in extra_columns)
+    return pa.schema(fields, metadata=metadata)
+
+
+@dataclasses.dataclass
+class ExportSummary:
+    """What :func:`export` did."""
+
+    path: Path
+    n_files: int
+    n_clips: int
+    n_skipped: int
+    n_frames: int
+    audio_seconds: float
+    wall_seconds: float
+    failures: list[tuple[str, str]]
+
+    def line(self) -> str:
+        """One-line summary for a person."""
+        speed = self.audio_seconds / max(self.wall_seconds, 1e-9)
+        text = (f"{self.n_clips} of {self.n_files} files exported ({self.n_skipped} already "
+                f"done), {self.n_frames} frames, {self.audio_seconds / 3600:.3f} h of audio in "
+                f"{self.wall_seconds:.1f} s ({speed:.0f}x realtime)")
+        if self.failures:
+            text += f"; {len(self.failures)} FAILED (see {self.path / FAILURES})"
+        return text
+
+
+# ----------------------------------------------------------------------------- worker side
+
+_PIPELINES: dict[str, FeaturePipeline] = {}
+
+
+def _pipeline(model_path: str, checksum: str) -> FeaturePipeline:
+    key = f"{model_path}|{checksum}"
+    if key not in _PIPELINES:
+        pipe = load_pipeline(model_path)
+        if pipe.checksum != checksum:
+            raise ExportError(f"{model_path}: the model file changed during the export")
+        _PIPELINES[key] = pipe
+    return _PIPELINES[key]
+
+
+def _limit_threads() -> None:
+    with contextlib.suppress(Exception):
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+
+
+def _clip_features(pipe: FeaturePipeline, frames_blocks: Iterator[np.ndarray]
+                   ) -> Iterator[np.ndarray]:
+    """Hidden activations of a clip given as blocks of log-mel frames."""
+    stacker = ContextStacker(pipe.config.frontend.context)
+    for frames in frames_blocks:
+        rows = stacker.push(pipe.standardise(frames))
+        if len(rows):
+            yield pipe.rbm.transform(rows)
+    rest = stacker.finish()
+    if len(rest):
+        yield pipe.rbm.transform(rest)
+
+
+def _export_task(task: dict[str, Any]) -> dict[str, Any]:
+    """Worker: features of a group of clips into one part file (and its clip-table part)."""
+    if task.get("limit_threads", True):
+        _limit_threads()
+    pipe = _pipeline(task["model"], task["checksum"])
+    fe_cfg = pipe.config.frontend
+    frontend = FrontEnd(fe_cfg)
+    n_hidden = pipe.rbm.n_hidden
+    layout, pools, extra_columns = task["layout"], task["pools"], task["extra_columns"]
+    metadata = {METADATA_KEY: json.dumps({**task["metadata"],
+                                          "sources": [j["source"] for j in task["jobs"]]}
+                                         ).encode()}
+    schema = frame_schema(n_hidden, extra_columns, layout=layout, metadata=metadata)
+    rows_per_group = max(1024, ROW_GROUP_BYTES // (4 * n_hidden + 64))
+    out = Path(task["out"])
+    part = out / f"part-{task['id']}.parquet"
+    cache = FrameCache.open(task["cache"]) if task.get("cache") else None
+    done: list[dict[str, Any]] = []
+    failures: list[tuple[str, str]] = []
+    clip_rows: list[dict[str, Any]] = []
+    with atomic_path(part) as tmp:
+        writer = pq.ParquetWriter(tmp, schema, compression="zstd")
+        try:
+            for job in task["jobs"]:
+                try:
+                    stats = _export_clip(job, pipe, frontend, cache, writer, schema,
+                                         rows_per_group, layout, pools, extra_columns)
+                except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
+                    reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
+                    failures.append((job["source"], reason))
+                    continue
+                done.append({"source": job["source"], "n_frames": stats["n_frames"],
+                             "duration_s": stats["duration_s"]})
+                if pools:
+                    clip_rows.append({"source": job["source"], "n_frames": stats["n_frames"],
+                                      "duration_s": stats["duration_s"],
+                                      **{p: stats[p] for p in pools},
+                                      **{c: job["extra"].get(c, "") for c in extra_columns}})
+        finally:
+            writer.close()
+        if pools:
+            _write_clip_part(out / CLIPS_DIR / f"part-{task['id']}.parquet", clip_rows,
+                             n_hidden, pools, extra_columns, metadata)
+    return {"id": task["id"], "done": done, "failures": failures}
+
+
+def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
+                 cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
+                 rows_per_group: int, layout: str, pools: Sequence[str],
+                 extra_columns: Sequence[str]) -> dict[str, Any]:
+    fe_cfg = frontend.config
+    if cache is not None:
+        clip = job["clip"]
+        frames_all = cache.clip_frames(clip)
+        blocks: Iterator[np.ndarray] = (frames_all[a:a + 8192]
+                                        for a in range(0, len(frames_all), 8192))
+        duration = float(job["duration_s"])
+    else:
+        path = Path(job["path"])
+        duration = read_info(path).duration
+        audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
+        blocks = frontend.stream(audio, fe_cfg.sample_rate)
+    n_hidden = pipe.rbm.n_hidden
+    total = np.zeros(n_hidden, np.float64)
+    total_sq = np.zeros(n_hidden, np.float64)
+    peak = np.full(n_hidden, -np.inf, np.float32)
+    start = 0
+    pending: list[np.ndarray] = []
+    n_pending = 0
+
+    def flush() -> None:
+        nonlocal pending, n_pending, start
+        if not pending:
+            return
+        feats = np.concatenate(pending) if len(pending) > 1 else pending[0]
+        writer.write_table(_frame_table(job, feats, start, fe_cfg, schema, layout,
+                                        extra_columns), row_group_size=rows_per_group)
+        start += len(feats)
+        pending, n_pending = [], 0
+
+    for feats in _clip_features(pipe, blocks):
+        total += feats.sum(axis=0, dtype=np.float64)
+        total_sq += np.square(feats, dtype=np.float64).sum(axis=0)
+        np.maximum(peak, feats.max(axis=0), out=peak)
+        pending.append(feats)
+        n_pending += len(feats)
+        if n_pending >= rows_per_group:
+            flush()
+    flush()
+    if start == 0:
+        raise AudioReadError(job["source"], f"shorter than one analysis window (n_fft "
+                             f"{fe_cfg.fft_length} samples at {fe_cfg.sample_rate} Hz)")
+    mean = total / start
+    std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
+    stats: dict[str, Any] = {"n_frames": start, "duration_s": duration}
+    if pools:
+        stats.update(mean=mean.astype(np.float32), max=peak, std=std.astype(np.float32))
+    return stats
+
+
+def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, fe_cfg: Any,
+                 schema: pa.Schema, layout: str, extra_columns: Sequence[str]) -> pa.Table:
+    n, n_hidden = feats.shape
+    frame = np.arange(start, start + n, dtype=np.int32)
+    columns: list[pa.Array] = [
+        pa.array([job["source"]] * n, pa.string()),
+        pa.array(frame),
+        pa.array(frame.astype(np.float64) * fe_cfg.hop_length / fe_cfg.sample_rate),
+    ]
+    feats = np.ascontiguousarray(feats, np.float32)
+    if layout == "vector":
+        columns.append(pa.FixedSizeListArray.from_arrays(pa.array(feats.reshape(-1)), n_hidden))
+    else:
+        columns.extend(pa.array(feats[:, j]) for j in range(n_hidden))
+    columns.extend(pa.array([job["extra"].get(c, "")] * n, pa.string()) for c in extra_columns)
+    return pa.Table.from_arrays(columns, schema=schema)
+
+
+def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
+                     pools: Sequence[str], extra_columns: Sequence[str],
+                     metadata: dict[bytes, bytes]) -> None:
+    schema = clip_schema(n_hidden, pools, extra_columns, metadata=metadata)
+    arrays: list[pa.Array] = [pa.array([r["source"] for r in rows], pa.string()),
+                              pa.array([r["n_frames"] for r in rows], pa.int64()),
+                              pa.array([r["duration_s"] for r in rows], pa.float64())]
+    for p in pools:
+        flat = (np.concatenate([r[p] for r in rows]) if rows else np.zeros(0, np.float32))
+        arrays.append(pa.FixedSizeListArray.from_arrays(pa.array(flat, pa.float32()), n_hidden))
+    arrays.extend(pa.array([r[c] for r in rows], pa.string()) for c in extra_columns)
+    with atomic_path(path) as tmp:
+        pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp, compression="zstd")
+
+
+# ----------------------------------------------------------------------------- driver side
+
+@contextlib.contextmanager
+def _exclusive(out: Path) -> Iterator[None]:
+    """Hold the dataset's lock; a second export into the same folder is refused."""
+    import fcntl
+
+    fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+    try:
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise ExportError(f"{out}: another export is writing into this folder "
+                              "(lock held); wait for it or choose another --out") from None
+        yield
+    finally:
+        fh.close()
+
+
+def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
+    """Sources already in complete parts of this model, and parts of another model."""
+    done: set[str] = set()
+    foreign: list[Path] = []
+    for part in sorted(out.glob("part-*.parquet")):
+        try:
+            meta = pq.read_schema(part).metadata or {}
+            info = json.loads(meta[METADATA_KEY])
+        except (OSError, KeyError, ValueError, pa.ArrowException):
+            foreign.append(part)
+            continue
+        if info.get("model_checksum") != checksum:
+            foreign.append(part)
+        else:
+            done.update(info.get("sources", []))
+    return done, foreign
+
+
+def export(
+    source: str | Path,
+    model: str | Path,
+    out: str | Path,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    layout: str = "vector",
+    pool: Sequence[str] = (),
+    overwrite: bool = False,
+    config: Config | None = None,
+    allow_outside: bool = False,
+    progress: bool = False,
+) -> ExportSummary:
+    """Write every frame's hidden activations to a Parquet dataset.
+
+    Parameters
+    ----------
+    source : str or Path
+        A folder of audio, a manifest CSV, or a frame cache. Audio is decoded and framed
+        with the model's own front-end configuration and band statistics, so features are
+        identical whichever kind of source is given.
+    model : str or Path
+        A model file written by :func:`timbrel.training.train`.
+    out : str or Path
+        Dataset folder; created if missing.
+    workers : int, optional
+        Local worker processes; default: one per CPU core. Ignored with ``scheduler``.
+    scheduler : str, optional
+        Address of a dask.distributed scheduler (``tcp://HOST:PORT``); the same tasks run
+        there. Needs the ``dask`` extra. The result is identical to the local backend.
+    layout : {"vector", "wide"}, default "vector"
+        One ``features`` list column, or one float32 column per hidden unit.
+    pool : sequence of {"mean", "max", "std"}, default ()
+        Also write a clip table (``out/_clips/``) with these poolings over each clip.
+    overwrite : bool, default False
+        Delete what ``out`` holds and start over. Without it, a dataset of the same model
+        is resumed (finished clips are skipped) and one of another model is refused.
+    config : Config, optional
+        Must agree with the model's front end if given (it is refused otherwise).
+    allow_outside : bool, default False
+        Accept manifest paths outside the manifest's folder.
+    progress : bool, default False
+
+    Returns
+    -------
+    ExportSummary
+
+    Raises
+    ------
+    ExportError
+        If the folder holds another model's dataset, another export holds its lock, or
+        the config disagrees with the model.
+    """
+    t0 = time.perf_counter()
+    if layout not in LAYOUTS:
+        raise ParameterError(f"layout = {layout!r} is not one of {', '.join(LAYOUTS)}")
+    pools = list(dict.fromkeys(pool))
+    bad = [p for p in pools if p not in POOLS]
+    if bad:
+        raise ParameterError(f"pool {bad} not among {', '.join(POOLS)}")
+    pipe = load_pipeline(model)
+    fe = pipe.config.frontend
+    if config is not None and config.frontend != fe:
+        diffs = [f"{f.name}: config {getattr(config.frontend, f.name)!r}, model "
+                 f"{getattr(fe, f.name)!r}" for f in dataclasses.fields(fe)
+                 if getattr(config.frontend, f.name) != getattr(fe, f.name)]
+        raise ExportError(f"{model}: the configuration disagrees with the model's front end "
+                          f"({'; '.join(diffs)}); export always frames audio as the model "
+                          "was trained")
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise ParameterError(f"{out}: output exists and is not a folder")
+    out.mkdir(parents=True, exist_ok=True)
+    with _exclusive(out):
+        if overwrite:
+            _clear(out)
+        remove_stale_temporaries(out)
+        remove_stale_temporaries(out / CLIPS_DIR)
+        record = _read_record(out)
+        if record and record.get("model_checksum") != pipe.checksum:
+            raise ExportError(f"{out}: holds a dataset of another model "
+                              f"({record.get('model', '?')}); pass --overwrite to replace it")
+        if record and (record.get("layout"), record.get("pool")) != (layout, pools):
+            raise ExportError(f"{out}: holds a dataset written with layout "
+                              f"{record.get('layout')!r} and pool {record.get('pool')}; "
+                              "use the same options or --overwrite")
+        done, foreign = _finished_parts(out, pipe.checksum)
+        if foreign:
+            raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
+                              "pass --overwrite to replace them")
+        jobs, extra_columns, cache_path = _jobs(source, pipe, allow_outside=allow_outside)
+        metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
+                    "hidden": pipe.rbm.hidden, "n_hidden": int(pipe.rbm.n_hidden),
+                    "frontend": dataclasses.asdict(fe), "config": pipe.config.to_dict(),
+                    "timbrel": __version__, "layout": layout, "pool": pools,
+                    "exported": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+        record = {**metadata, "complete": False, "extra_columns": extra_columns}
+        _write_record(out, record)
+        todo = [j for j in jobs if j["source"] not in done]
+        tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
+                  "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
+                  "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path}
+                 for chunk in (todo[i:i + FILES_PER_TASK]
+                               for i in range(0, len(todo), FILES_PER_TASK))]
+        failures: dict[str, str] = {}
+        n_frames = 0
+        seconds = 0.0
+        with progress_bar(progress) as bar:
+            task_id = bar.add_task("export", total=len(jobs), info="")
+            bar.advance(task_id, len(jobs) - len(todo))
+            runner = (_run_dask(tasks, scheduler) if scheduler
+                      else _run_local(tasks, workers or os.cpu_count() or 1))
+            for result in runner:
+                for d in result["done"]:
+                    n_frames += d["n_frames"]
+                    seconds += d["duration_s"]
+                failures.update(result["failures"])
+                bar.advance(task_id, len(result["done"]) + len(result["failures"]))
+                elapsed = max(time.perf_counter() - t0, 1e-9)
+                bar.update(task_id, info=f"{n_frames / elapsed:.0f} frames/s, "
+                           f"{seconds / 3600 / elapsed * 3600:.2f} audio-h/h")
+        _write_failures(out, failures)
+        finished, _ = _finished_parts(out, pipe.checksum)
+        record.update(complete=True, n_sources=len(finished),
+                      finished_sources=sorted(finished))
+        _write_record(out, record)
+    return ExportSummary(path=out, n_files=len(jobs), n_clips=len(todo) - len(failures),
+                         n_skipped=len(jobs) - len(todo), n_frames=n_frames,
+                         audio_seconds=seconds, wall_seconds=time.perf_counter() - t0,
+                         failures=sorted(failures.items()))
+
+
+def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
+          ) -> tuple[list[dict[str, Any]], list[str], str | None]:
+    src = Path(source)
+    if src.is_dir() and (src / CACHE_MARKER).is_file():
+        cache = FrameCache.open(src)
+        if cache.config.frontend.frame_key() != pipe.config.frontend.frame_key():
+            raise ExportError(f"{src}: the cache's frames were made with other front-end "
+                              "settings than the model's; export from the audio instead")
+        extra = cache.extra_columns
+        table = cache.index.to_pylist()
+        jobs = [{"source": row["source"], "clip": i, "duration_s": row["duration_s"],
+                 "extra": {c: row.get(c) or "" for c in extra}} for i, row in enumerate(table)]
+        return jobs, extra, str(src.absolute())
+    items, extra = discover(src, allow_outside=allow_outside)
+    return [_job(item) for item in items], extra, None
+
+
+def _job(item: AudioItem) -> dict[str, Any]:
+    return {"source": item.source, "path": os.fsdecode(item.path), "extra": dict(item.extra)}
+
+
+def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
+    h = hashlib.sha256(checksum.encode())
+    for job in chunk:
+        h.update(job["source"].encode("utf-8", "surrogateescape") + b"\0")
+    return h.hexdigest()[:16]
+
+
+def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
+    if workers == 1 or len(tasks) <= 1:
+        for task in tasks:
+            yield _export_task({**task, "limit_threads": False})
+        return
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
+        futures = [ex.submit(_export_task, task) for task in tasks]
+        for future in concurrent.futures.as_completed(futures):
+            yield future.result()
+
+
+def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, Any]]:
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise ExportError("--scheduler needs the dask extra: pip install 'timbrel[dask]'") from None
+    try:
+        client = Client(address, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise ExportError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
+    with client:
+        futures = [client.submit(_export_task, task, key=f"timbrel-export-{task['id']}",
+                                 pure=False) for task in tasks]
+        for future in as_completed(futures):
+            yield future.result()
+
+
+def _read_record(out: Path) -> dict[str, Any] | None:
+    path = out / RECORD
+    if not path.is_file():
+        return None
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        raise ExportError(f"{path}: unreadable run record; pass --overwrite to start over") from None
+
+
+def _write_record(out: Path, record: dict[str, Any]) -> None:
+    with atomic_open(out / RECORD, "w", encoding="utf-8") as fh:
+        json.dump(record, fh, indent=1)
+
+
+def _write_failures(out: Path, failures: dict[str, str]) -> None:
+    with atomic_open(out / FAILURES, "w", encoding="utf-8", newline="") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["source", "reason"])
+        for src, reason in sorted(failures.items()):
+            writer.writerow([display_name(src), reason])
+
+
+def _clear(out: Path) -> None:
+    for entry in out.iterdir():
+        if entry.name == LOCK:
+            continue
+        if entry.is_dir():
+            shutil.rmtree(entry)
+        else:
+            entry.unlink()
