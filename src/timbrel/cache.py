@@ -38,6 +38,7 @@ from . import __version__
 from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
 from ._errors import AudioReadError, CacheError, ParameterError
 from ._progress import progress_bar
+from ._threads import single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
@@ -114,7 +115,11 @@ def _clip_key(source: str, size: int, mtime_ns: int, frame_key: str) -> str:
 
 def _process_task(task: dict[str, Any]) -> dict[str, Any]:
     """Worker: frame a group of files into one shard; return its entries and failures."""
-    _limit_threads()
+    with single_blas_thread():
+        return _frame_task(task)
+
+
+def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
     fe_config = FrontEndConfig(**task["frontend"])
     frontend = FrontEnd(fe_config)
     shard_dir = Path(task["shard_dir"])
@@ -169,14 +174,6 @@ def _frame_one(job: dict[str, Any], frontend: FrontEnd, fh: Any) -> dict[str, An
     return {"source": job["source"], "key": job["key"], "n_frames": n_frames,
             "duration_s": info.duration, "sample_rate": info.sample_rate,
             "channels": info.channels, "file_size": job["size"], "mtime_ns": job["mtime_ns"]}
-
-
-def _limit_threads() -> None:
-    # One BLAS thread per worker process: the pool already uses every core.
-    with contextlib.suppress(Exception):
-        from threadpoolctl import threadpool_limits
-
-        threadpool_limits(1)
 
 
 def _read_sidecars(shard_dir: Path, frame_key: str) -> dict[str, dict[str, Any]]:

@@ -12,6 +12,7 @@ files could not be used (the work on every other file is kept).
 from __future__ import annotations
 
 import sys
+from enum import Enum
 from pathlib import Path
 from typing import Annotated
 
@@ -99,6 +100,143 @@ def frames_command(
         _err(f"failed: {failure.source}: {failure.reason}")
     typer.echo(summary.line())
     typer.echo(f"cache: {summary.path}")
+    if strict and summary.failures:
+        raise typer.Exit(EXIT_FAILED_FILES)
+
+
+class Units(str, Enum):
+    """Hidden-unit kinds."""
+
+    relu = "relu"
+    binary = "binary"
+    stepped = "stepped"
+
+
+class Layout(str, Enum):
+    """Dataset layouts."""
+
+    vector = "vector"
+    wide = "wide"
+
+
+@app.command("fit")
+def fit_command(
+    cache: Annotated[Path, typer.Argument(help="Frame cache made by `timbrel frames`.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Model file to write (.npz).")],
+    config: ConfigOption = None,
+    overrides: SetOption = None,
+    hidden: Annotated[int | None, typer.Option("--hidden", min=1,
+                                               help="Number of hidden units.")] = None,
+    units: Annotated[Units | None, typer.Option("--units", help="Hidden-unit kind.")] = None,
+    epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Training epochs.")] = None,
+    seed: Annotated[int | None, typer.Option("--seed", help="Random seed.")] = None,
+    resume: Annotated[bool, typer.Option(
+        "--resume", help="Continue from MODEL.checkpoint.npz after a crash or stop.")] = False,
+    quiet: QuietOption = False,
+) -> None:
+    """Train an RBM on a frame cache and write one model file."""
+    from .cache import FrameCache
+    from .config import load_config
+    from .training import train
+
+    extra = [*(overrides or ())]
+    for key, value in (("n_hidden", hidden), ("hidden", units.value if units else None),
+                       ("epochs", epochs), ("seed", seed)):
+        if value is not None:
+            extra.append(f"model.{key}={value!r}" if isinstance(value, str)
+                         else f"model.{key}={value}")
+    base = load_config(config) if config else FrameCache.open(cache).config
+    cfg = base.with_overrides(extra)
+    result = train(cache, out, config=cfg, resume=resume, progress=not quiet, log=_err)
+    typer.echo(result.line())
+    typer.echo(f"model: {result.model_path}")
+    typer.echo(f"history: {result.history_path}")
+
+
+@app.command("inspect")
+def inspect_command(
+    model: Annotated[Path, typer.Argument(help="Model file.")],
+    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON.")] = False,
+    plots: Annotated[Path | None, typer.Option(
+        "--plots", help="Folder to draw pictures of the model into (PNG).")] = None,
+) -> None:
+    """Summarise a model file: sizes, unit kinds, sigma per band, training figures."""
+    import json
+
+    from .training import describe_model
+
+    summary = describe_model(model)
+    if plots is not None:
+        from .plots import draw_model
+
+        summary["plots"] = [str(p) for p in draw_model(model, plots)]
+    if as_json:
+        typer.echo(json.dumps(summary, indent=1))
+        return
+    typer.echo(_describe_text(summary))
+
+
+def _describe_text(s: dict) -> str:
+    lay = s["layout"]
+    last = s.get("last_epoch") or {}
+    lines = [
+        f"model      {s['path']}  (checksum {s['checksum'][:16]})",
+        f"units      {s['n_visible']} {s['visible']} visible = {lay['positions']} frames x "
+        f"{lay['bands']} bands (context {lay['context']}), {s['n_hidden']} {s['hidden']} hidden",
+        f"training   {s['epochs']} epochs on {s['training'].get('n_train_clips', '?')} clips "
+        f"({s['training'].get('n_validation_clips', '?')} held out), "
+        f"{s['training'].get('n_frames', '?')} frames",
+    ]
+    if last:
+        lines.append(f"last epoch recon {last.get('recon_error', float('nan')):.4f} train, "
+                     f"{last.get('val_recon_error') or float('nan'):.4f} validation; "
+                     f"free-energy gap {last.get('free_energy_gap') or float('nan'):+.3f}; "
+                     f"dead units {last.get('dead_fraction', 0):.0%}")
+    lines.append("sigma per band (standardised units; 1 = no spread explained):")
+    for row in s["sigma_per_band"]:
+        bar = "#" * max(1, round(40 * min(row["sigma"], 1.0)))
+        lines.append(f"  {row['band']:3d} {row['centre_hz']:8.0f} Hz  {row['sigma']:.3f}  {bar}")
+    if s.get("plots"):
+        lines.append("pictures:")
+        lines.extend(f"  {p}" for p in s["plots"])
+    return "\n".join(lines)
+
+
+@app.command("export")
+def export_command(
+    source: Annotated[Path, typer.Argument(help="Folder of audio, manifest CSV, or frame cache.")],
+    model: Annotated[Path, typer.Option("--model", "-m", help="Model file from `timbrel fit`.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Parquet dataset folder to write.")],
+    workers: WorkersOption = None,
+    scheduler: Annotated[str | None, typer.Option(
+        "--scheduler", help="Dask scheduler address, tcp://HOST:PORT (needs the dask extra).")
+    ] = None,
+    layout: Annotated[Layout, typer.Option(
+        "--layout", help="vector: one features list column; wide: one column per unit.")
+    ] = Layout.vector,
+    pool: Annotated[str, typer.Option(
+        "--pool", help="Also write a clip table with these poolings, e.g. mean,max,std.")] = "",
+    overwrite: Annotated[bool, typer.Option(
+        "--overwrite", help="Replace whatever the output folder holds.")] = False,
+    config: ConfigOption = None,
+    allow_outside: Annotated[bool, typer.Option(
+        "--allow-outside", help="Accept manifest paths outside the manifest's folder.")] = False,
+    strict: StrictOption = False,
+    quiet: QuietOption = False,
+) -> None:
+    """Write every frame's hidden activations to a Parquet dataset."""
+    from .config import load_config
+    from .export import export
+
+    cfg = load_config(config) if config else None
+    pools = [p.strip() for p in pool.split(",") if p.strip()]
+    summary = export(source, model, out, workers=workers, scheduler=scheduler,
+                     layout=layout.value, pool=pools, overwrite=overwrite, config=cfg,
+                     allow_outside=allow_outside, progress=not quiet)
+    for src, reason in summary.failures:
+        _err(f"failed: {src}: {reason}")
+    typer.echo(summary.line())
+    typer.echo(f"dataset: {summary.path}")
     if strict and summary.failures:
         raise typer.Exit(EXIT_FAILED_FILES)
 

@@ -38,6 +38,7 @@ from . import __version__
 from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
 from ._errors import AudioReadError, ExportError, ParameterError
 from ._progress import progress_bar
+from ._threads import single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -139,13 +140,6 @@ def _pipeline(model_path: str, checksum: str) -> FeaturePipeline:
     return _PIPELINES[key]
 
 
-def _limit_threads() -> None:
-    with contextlib.suppress(Exception):
-        from threadpoolctl import threadpool_limits
-
-        threadpool_limits(1)
-
-
 def _clip_features(pipe: FeaturePipeline, frames_blocks: Iterator[np.ndarray]
                    ) -> Iterator[np.ndarray]:
     """Hidden activations of a clip given as blocks of log-mel frames."""
@@ -161,8 +155,11 @@ def _clip_features(pipe: FeaturePipeline, frames_blocks: Iterator[np.ndarray]
 
 def _export_task(task: dict[str, Any]) -> dict[str, Any]:
     """Worker: features of a group of clips into one part file (and its clip-table part)."""
-    if task.get("limit_threads", True):
-        _limit_threads()
+    with single_blas_thread():
+        return _export_group(task)
+
+
+def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     pipe = _pipeline(task["model"], task["checksum"])
     fe_cfg = pipe.config.frontend
     frontend = FrontEnd(fe_cfg)
@@ -406,8 +403,11 @@ def export(
     with _exclusive(out):
         if overwrite:
             _clear(out)
+        if pools:
+            (out / CLIPS_DIR).mkdir(exist_ok=True)
         remove_stale_temporaries(out)
         remove_stale_temporaries(out / CLIPS_DIR)
+        _drop_orphan_clip_parts(out)
         record = _read_record(out)
         if record and record.get("model_checksum") != pipe.checksum:
             raise ExportError(f"{out}: holds a dataset of another model "
@@ -493,7 +493,7 @@ def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
 def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
     if workers == 1 or len(tasks) <= 1:
         for task in tasks:
-            yield _export_task({**task, "limit_threads": False})
+            yield _export_task(task)
         return
     import multiprocessing
 
@@ -518,6 +518,14 @@ def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, A
                                  pure=False) for task in tasks]
         for future in as_completed(futures):
             yield future.result()
+
+
+def _drop_orphan_clip_parts(out: Path) -> None:
+    # a clip part is published just before its frame part; one without a frame part is
+    # from a task killed in between, and that task's clips will be exported again
+    for clip_part in (out / CLIPS_DIR).glob("part-*.parquet"):
+        if not (out / clip_part.name).is_file():
+            clip_part.unlink()
 
 
 def _read_record(out: Path) -> dict[str, Any] | None:

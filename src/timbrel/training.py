@@ -64,7 +64,7 @@ def model_from_config(config: Config, *, layout: tuple[int, int] | None = None) 
         params["layout"] = layout
     try:
         rbm = RBM(**params)
-        rbm._validate_params() if hasattr(rbm, "_validate_params") else None
+        rbm._check_params()
     except (TypeError, ValueError) as exc:
         raise ConfigError(f"[model]: {exc}") from None
     return rbm
@@ -377,8 +377,12 @@ def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> tuple[int, list[di
         raise ModelFileError(f"{path}: unreadable checkpoint ({exc})") from None
     if header.get("format") != CHECKPOINT_FORMAT:
         raise ModelFileError(f"{path}: not a timbrel checkpoint")
-    saved = Config.from_dict(header["config"])
-    if saved.to_dict() != config.to_dict():
+    saved = Config.from_dict(header["config"]).to_dict()
+    wanted = config.to_dict()
+    # the number of epochs is the one setting a resume may change (to train longer)
+    saved["model"].pop("epochs", None)
+    wanted["model"].pop("epochs", None)
+    if saved != wanted:
         raise ConfigError(f"{path}: the checkpoint was made with another configuration; "
                           "resume with the same settings or start over without --resume")
     rbm.set_state({**header["state"], **arrays})
@@ -444,3 +448,46 @@ def load_pipeline(path: str | Path) -> FeaturePipeline:
         raise ModelFileError(f"{path}: model has {model.rbm.n_features_in_} visible units but its "
                              f"front end gives {config.frontend.n_visible}")
     return FeaturePipeline(model.rbm, config, band_mean, band_scale, model.checksum, meta)
+
+
+def describe_model(path: str | Path) -> dict[str, Any]:
+    """A JSON-able summary of a model file: sizes, unit kinds, σ per band, training figures.
+
+    σ per band is the learned visible standard deviation in standardised units (1 means the
+    model explains none of the band's spread) and, multiplied by the band's training
+    spread, in log-mel units.
+    """
+    pipe = load_pipeline(path)
+    rbm, fe = pipe.rbm, pipe.config.frontend
+    from .frontend import hz_to_mel, mel_to_hz
+
+    edges = mel_to_hz(np.linspace(hz_to_mel(fe.fmin, scale=fe.mel_scale),
+                                  hz_to_mel(fe.upper_frequency, scale=fe.mel_scale),
+                                  fe.n_mels + 2), scale=fe.mel_scale)
+    sigma = np.asarray(rbm.sigma_, np.float64).reshape(fe.n_positions, fe.n_mels)
+    sigma_band = sigma.mean(axis=0)
+    history = list(pipe.metadata.get("history", []))
+    last = history[-1] if history else {}
+    weights = np.asarray(rbm.weights_)
+    return {
+        "path": str(path),
+        "checksum": pipe.checksum,
+        "timbrel": pipe.metadata.get("timbrel"),
+        "n_visible": int(weights.shape[0]),
+        "n_hidden": int(weights.shape[1]),
+        "hidden": rbm.hidden,
+        "visible": rbm.visible,
+        "layout": {"context": fe.context, "positions": fe.n_positions, "bands": fe.n_mels},
+        "frontend": dataclasses.asdict(fe),
+        "model": rbm.get_params(),
+        "training": pipe.metadata.get("cache", {}),
+        "epochs": len(history),
+        "last_epoch": last,
+        "sigma_per_band": [
+            {"band": b, "centre_hz": round(float(edges[b + 1]), 1),
+             "sigma": round(float(sigma_band[b]), 4),
+             "sigma_logmel": round(float(sigma_band[b] * pipe.band_scale[b]), 4)}
+            for b in range(fe.n_mels)],
+        "weight_norm_range": [float(np.linalg.norm(weights, axis=0).min()),
+                              float(np.linalg.norm(weights, axis=0).max())],
+    }

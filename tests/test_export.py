@@ -1,0 +1,209 @@
+"""Tests of timbrel.export, read back with outside readers (pyarrow.dataset, DuckDB, pandas)."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pyarrow.dataset as pads
+import pyarrow.parquet as pq
+import pytest
+import soundfile as sf
+
+from timbrel import ExportError
+from timbrel.audio import load
+from timbrel.cache import build_cache
+from timbrel.config import load_config
+from timbrel.export import export
+from timbrel.frontend import FrontEnd
+from timbrel.training import load_pipeline, train
+
+N_HIDDEN = 20
+
+
+@pytest.fixture(scope="module")
+def setup(tmp_path_factory):
+    root = tmp_path_factory.mktemp("export")
+    clips = root / "clips"
+    clips.mkdir()
+    rng = np.random.default_rng(9)
+    rows = ["path,label,split"]
+    for i in range(10):
+        sr = (16000, 22050)[i % 2]
+        seconds = 0.4 + 0.1 * i
+        y = 0.2 * rng.standard_normal(int(sr * seconds))
+        sf.write(clips / f"s{i:02d}.wav", y.astype(np.float32), sr)
+        rows.append(f"clips/s{i:02d}.wav,{'ab'[i % 2]},{'train' if i < 7 else 'test'}")
+    (clips / "broken.wav").write_bytes(b"RIFF nonsense")
+    rows.append("clips/broken.wav,a,train")
+    manifest = root / "manifest.csv"
+    manifest.write_text("\n".join(rows) + "\n")
+    config = load_config(overrides=["frontend.n_mels=12", "frontend.context=2",
+                                    f"model.n_hidden={N_HIDDEN}", "model.epochs=2",
+                                    "model.seed=4"])
+    build_cache(manifest, root / "cache", config=config, workers=1)
+    train(root / "cache", root / "model.npz", config=config)
+    return {"root": root, "manifest": manifest, "cache": root / "cache",
+            "model": root / "model.npz"}
+
+
+def _sorted_table(path):
+    table = pads.dataset(path).to_table()  # outside reader: pyarrow.dataset
+    return table.sort_by([("source", "ascending"), ("frame", "ascending")])
+
+
+def _features(table):
+    return np.stack(table.column("features").to_numpy(zero_copy_only=False))
+
+
+def test_rows_equal_in_process_transform_and_predicted_counts(tmp_path, setup):
+    out = tmp_path / "ds"
+    summary = export(setup["manifest"], setup["model"], out, workers=1)
+    assert summary.n_clips == 10 and [s for s, _ in summary.failures] == ["clips/broken.wav"]
+    table = _sorted_table(out)
+    pipe = load_pipeline(setup["model"])
+    fe = FrontEnd(pipe.config.frontend)
+    for source in sorted(set(table.column("source").to_pylist())):
+        rows = table.filter(pads.field("source") == source)
+        y = load(setup["root"] / source, sr=16000)
+        expected = pipe.features(fe.frames(y, 16000))
+        np.testing.assert_allclose(_features(rows), expected, atol=1e-6)
+        assert rows.column("frame").to_pylist() == list(range(len(expected)))
+        np.testing.assert_allclose(rows.column("start_s").to_numpy(),
+                                   np.arange(len(expected)) * 160 / 16000)
+        assert len(expected) == fe.n_frames(y.size)
+    assert table.schema.field("features").type.list_size == N_HIDDEN
+    meta = json.loads(table.schema.metadata[b"timbrel"])
+    assert meta["model_checksum"] == pipe.checksum and meta["hidden"] == "relu"
+    assert meta["frontend"]["n_mels"] == 12
+
+
+def test_duckdb_and_pandas_read_the_dataset(tmp_path, setup):
+    out = tmp_path / "ds"
+    export(setup["manifest"], setup["model"], out, workers=2)
+    # outside reader: DuckDB SQL over the part files
+    counts = dict(duckdb.sql(f"select source, count(*) from read_parquet('{out}/*.parquet') "
+                             "group by source").fetchall())
+    pipe = load_pipeline(setup["model"])
+    fe = FrontEnd(pipe.config.frontend)
+    for source, n in counts.items():
+        assert n == fe.n_frames(load(setup["root"] / source, sr=16000).size)
+    # outside reader: pandas through pyarrow
+    frame = pd.read_parquet(out)
+    assert len(frame) == sum(counts.values())
+    assert set(frame["label"]) == {"a", "b"} and set(frame["split"]) == {"train", "test"}
+
+
+def test_cache_source_gives_identical_features(tmp_path, setup):
+    export(setup["manifest"], setup["model"], tmp_path / "a", workers=1)
+    export(setup["cache"], setup["model"], tmp_path / "b", workers=2)
+    a, b = _sorted_table(tmp_path / "a"), _sorted_table(tmp_path / "b")
+    assert a.column("source").to_pylist() == b.column("source").to_pylist()
+    np.testing.assert_array_equal(_features(a), _features(b))
+    assert a.column("label").to_pylist() == b.column("label").to_pylist()
+
+
+def test_wide_layout_and_clip_table(tmp_path, setup):
+    out = tmp_path / "wide"
+    export(setup["cache"], setup["model"], out, workers=1, layout="wide",
+           pool=["mean", "max", "std"])
+    table = _sorted_table(out)
+    names = [f"h{j:04d}" for j in range(N_HIDDEN)]
+    assert table.column_names[3:3 + N_HIDDEN] == names
+    wide = np.column_stack([table.column(n).to_numpy() for n in names])
+    export(setup["cache"], setup["model"], tmp_path / "vec", workers=1)
+    np.testing.assert_array_equal(wide, _features(_sorted_table(tmp_path / "vec")))
+    clips = pads.dataset(out / "_clips").to_table().sort_by("source")
+    assert clips.num_rows == 10
+    first = table.filter(pads.field("source") == clips.column("source")[0].as_py())
+    feats = np.column_stack([first.column(n).to_numpy() for n in names])
+    np.testing.assert_allclose(clips.column("mean")[0].values.to_numpy(), feats.mean(0),
+                               rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(clips.column("max")[0].values.to_numpy(), feats.max(0))
+    np.testing.assert_allclose(clips.column("std")[0].values.to_numpy(), feats.std(0),
+                               rtol=1e-3, atol=1e-5)
+
+
+def test_rerun_skips_finished_sources_and_other_models_are_refused(tmp_path, setup):
+    out = tmp_path / "ds"
+    export(setup["cache"], setup["model"], out, workers=1)
+    again = export(setup["cache"], setup["model"], out, workers=1)
+    assert again.n_skipped == 10 and again.n_frames == 0
+    other = tmp_path / "other.npz"
+    config = load_pipeline(setup["model"]).config.with_overrides(["model.seed=99"])
+    train(setup["cache"], other, config=config)
+    with pytest.raises(ExportError, match="another model"):
+        export(setup["cache"], other, out, workers=1)
+    summary = export(setup["cache"], other, out, workers=1, overwrite=True)
+    assert summary.n_clips == 10
+    assert len(_sorted_table(out)) == _sorted_table(tmp_path / "ds").num_rows
+
+
+def test_config_that_disagrees_with_the_model_is_refused(tmp_path, setup):
+    with pytest.raises(ExportError, match="n_mels: config 40, model 12"):
+        export(setup["manifest"], setup["model"], tmp_path / "x", config=load_config())
+
+
+def test_second_concurrent_export_is_refused_by_the_lock(tmp_path, setup):
+    import fcntl
+
+    out = tmp_path / "ds"
+    out.mkdir()
+    with open(out / ".lock", "a+") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)  # as a running export holds it
+        with pytest.raises(ExportError, match="lock held"):
+            export(setup["cache"], setup["model"], out, workers=1)
+
+
+def test_killed_export_resumes_with_every_frame_exactly_once(tmp_path, setup):
+    out = tmp_path / "ds"
+    script = (
+        "import sys, time\n"
+        "import timbrel.export as ex\n"
+        "ex.FILES_PER_TASK = 1\n"
+        "original = ex._export_clip\n"
+        "def slow(*a, **k):\n"
+        "    time.sleep(0.4)\n"
+        "    return original(*a, **k)\n"
+        "ex._export_clip = slow\n"
+        "ex.export(sys.argv[1], sys.argv[2], sys.argv[3], workers=1)\n")
+    proc = subprocess.Popen([sys.executable, "-c", script, str(setup["manifest"]),
+                             str(setup["model"]), str(out)])
+    deadline = time.time() + 60
+    while time.time() < deadline and len(list(out.glob("part-*.parquet"))) < 3:
+        time.sleep(0.05)
+    os.kill(proc.pid, signal.SIGKILL)  # a real kill, mid-export
+    proc.wait()
+    n_before = len(list(out.glob("part-*.parquet")))
+    assert 3 <= n_before < 11
+    summary = export(setup["manifest"], setup["model"], out, workers=1)
+    assert summary.n_skipped >= 3
+    table = _sorted_table(out)
+    reference = tmp_path / "clean"
+    export(setup["manifest"], setup["model"], reference, workers=1)
+    clean = _sorted_table(reference)
+    keys = list(zip(table.column("source").to_pylist(), table.column("frame").to_pylist(),
+                    strict=True))
+    assert len(keys) == len(set(keys)) == clean.num_rows
+    np.testing.assert_array_equal(_features(table), _features(clean))
+    assert not [p for p in out.iterdir() if p.name.endswith(".part")]
+
+
+def test_dask_cluster_gives_the_same_dataset(tmp_path, setup):
+    distributed = pytest.importorskip("distributed")
+    export(setup["manifest"], setup["model"], tmp_path / "local", workers=2)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        export(setup["manifest"], setup["model"], tmp_path / "dask",
+               scheduler=cluster.scheduler_address)
+    a, b = _sorted_table(tmp_path / "local"), _sorted_table(tmp_path / "dask")
+    assert a.column("source").to_pylist() == b.column("source").to_pylist()
+    np.testing.assert_array_equal(_features(a), _features(b))
+    assert pq.read_schema(next((tmp_path / "dask").glob("part-*.parquet"))).metadata

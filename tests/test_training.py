@@ -1,0 +1,157 @@
+"""Tests of timbrel.training: batches from the cache, clip-level validation, checkpoints,
+resume, the divergence guard through the trainer, and the model file's provenance."""
+
+from __future__ import annotations
+
+import csv
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from timbrel import ConfigError, DivergenceError, ModelFileError
+from timbrel.cache import FrameCache, build_cache
+from timbrel.config import load_config
+from timbrel.frontend import stack_context
+from timbrel.training import (_Batches, _split_clips, checkpoint_path, describe_model,
+                              history_path, load_pipeline, train)
+
+
+@pytest.fixture(scope="module")
+def cache_dir(tmp_path_factory):
+    """A small cache of two kinds of synthetic sound (chirps and noise bursts)."""
+    root = tmp_path_factory.mktemp("train")
+    audio = root / "audio"
+    audio.mkdir()
+    rng = np.random.default_rng(5)
+    sr = 16000
+    t = np.arange(int(0.6 * sr)) / sr
+    for i in range(12):
+        if i % 2:
+            y = 0.3 * np.sin(2 * np.pi * (400 + 800 * i / 12) * t * (1 + t))
+        else:
+            y = 0.2 * rng.standard_normal(t.size) * (t < 0.3)
+        y = y + 0.01 * rng.standard_normal(t.size)
+        sf.write(audio / f"c{i:02d}.wav", y.astype(np.float32), sr)
+    config = load_config(overrides=["frontend.n_mels=16", "frontend.context=2"])
+    build_cache(audio, root / "cache", config=config, workers=1)
+    return root / "cache"
+
+
+def _config(**model):
+    params = {"n_hidden": 24, "epochs": 3, "seed": 3, "batch_size": 64, **model}
+    overrides = ["frontend.n_mels=16", "frontend.context=2", "training.chunk_frames=300"]
+    overrides += [f"model.{k}={v!r}" if isinstance(v, str) else f"model.{k}={v}"
+                  for k, v in params.items()]
+    return load_config(overrides=overrides)
+
+
+def test_validation_holds_out_whole_clips():
+    train_clips, val_clips = _split_clips(20, 0.25, seed=1)
+    assert len(val_clips) == 5
+    assert set(train_clips).isdisjoint(val_clips)
+    assert sorted([*train_clips, *val_clips]) == list(range(20))
+
+
+def test_batches_are_standardised_context_windows_of_the_training_clips(cache_dir):
+    cache = FrameCache.open(cache_dir)
+    stats = cache.band_stats
+    clips = np.array([0, 3, 5])
+    batches = _Batches(cache, clips, stats, context=2, batch_size=32, chunk_frames=100,
+                       max_frames=0)
+    rows = np.concatenate(list(batches.epoch(np.random.default_rng(0))))
+    expected = np.concatenate([stack_context(stats.standardise(cache.clip_frames(c)), 2)
+                               for c in clips])
+    assert rows.shape == expected.shape
+    # same multiset of rows: sort both lexicographically
+    order_a = np.lexsort(rows.T[::-1])
+    order_b = np.lexsort(expected.T[::-1])
+    np.testing.assert_allclose(rows[order_a], expected[order_b], atol=1e-6)
+    assert all(len(b) <= 32 for b in batches.epoch(np.random.default_rng(0)))
+
+
+def test_train_writes_model_history_and_checkpoint(tmp_path, cache_dir):
+    out = tmp_path / "m.npz"
+    result = train(cache_dir, out, config=_config())
+    assert out.is_file() and history_path(out).is_file() and checkpoint_path(out).is_file()
+    assert [h["epoch"] for h in result.history] == [1, 2, 3]
+    for key in ("recon_error", "val_recon_error", "free_energy_gap", "mean_hidden_activity",
+                "dead_fraction", "sigma_min", "sigma_max"):
+        assert np.isfinite(result.history[-1][key]), key
+    with open(history_path(out), newline="") as fh:
+        assert len(list(csv.DictReader(fh))) == 3
+    pipe = load_pipeline(out)
+    cache = FrameCache.open(cache_dir)
+    assert pipe.config.frontend.context == 2
+    np.testing.assert_allclose(pipe.band_mean, cache.band_stats.mean, rtol=1e-6)
+    assert pipe.rbm.n_features_in_ == 5 * 16
+    summary = describe_model(out)
+    assert summary["n_hidden"] == 24 and len(summary["sigma_per_band"]) == 16
+    assert summary["epochs"] == 3
+
+
+def test_same_seed_same_model_and_resume_equals_uninterrupted(tmp_path, cache_dir):
+    full = tmp_path / "full.npz"
+    train(cache_dir, full, config=_config(epochs=4))
+    again = tmp_path / "again.npz"
+    train(cache_dir, again, config=_config(epochs=4))
+    a, b = load_pipeline(full).rbm, load_pipeline(again).rbm
+    np.testing.assert_array_equal(a.weights_, b.weights_)
+    # stop after 2 epochs, then resume to 4 from the checkpoint
+    part = tmp_path / "part.npz"
+    train(cache_dir, part, config=_config(epochs=2))
+    ckpt = checkpoint_path(part)
+    resumed = tmp_path / "resumed.npz"
+    checkpoint_path(resumed).write_bytes(ckpt.read_bytes())
+    with pytest.raises(ConfigError, match="another configuration"):
+        train(cache_dir, resumed, config=_config(epochs=4, n_hidden=25), resume=True)
+    # the epoch count is the one setting a resume may change
+    result = train(cache_dir, resumed, config=_config(epochs=4), resume=True)
+    assert [h["epoch"] for h in result.history] == [1, 2, 3, 4]
+    c = load_pipeline(resumed).rbm
+    np.testing.assert_array_equal(c.weights_, a.weights_)
+    np.testing.assert_array_equal(c.sigma_, a.sigma_)
+
+
+def test_divergence_is_rolled_back_and_reported(tmp_path, cache_dir):
+    lines = []
+    try:
+        result = train(cache_dir, tmp_path / "hot.npz", log=lines.append,
+                       config=_config(learning_rate=5.0, variance_learning_rate=1.0,
+                                      max_rollbacks=8))
+    except DivergenceError as exc:
+        assert "diverge" in str(exc).lower()
+        return
+    assert any("roll" in line.lower() for line in lines), lines
+    assert sum(h["rollbacks"] for h in result.history) >= 1
+    rbm = load_pipeline(tmp_path / "hot.npz").rbm
+    assert np.isfinite(rbm.weights_).all() and np.isfinite(rbm.sigma_).all()
+
+
+def test_hopeless_learning_rate_stops_with_a_clear_error(tmp_path, cache_dir):
+    with pytest.raises(DivergenceError):
+        train(cache_dir, tmp_path / "x.npz",
+              config=_config(learning_rate=1e6, variance_learning_rate=1e3, max_rollbacks=1,
+                             initial_momentum=0.0, final_momentum=0.0))
+    assert not (tmp_path / "x.npz").exists()
+
+
+def test_front_end_that_disagrees_with_the_cache_is_refused(tmp_path, cache_dir):
+    config = load_config(overrides=["frontend.n_mels=20", "model.epochs=1"])
+    with pytest.raises(ConfigError, match="n_mels: config 20, cache 16"):
+        train(cache_dir, tmp_path / "m.npz", config=config)
+
+
+def test_unknown_model_key_is_refused(tmp_path, cache_dir):
+    config = load_config(overrides=["frontend.n_mels=16", "model.hiden=4"])
+    with pytest.raises(ConfigError, match="unknown key"):
+        train(cache_dir, tmp_path / "m.npz", config=config)
+
+
+def test_a_bare_rbm_file_is_not_a_pipeline(tmp_path):
+    from timbrel.model import RBM
+
+    rbm = RBM(n_hidden=3, epochs=1, seed=0).fit(np.random.default_rng(0).standard_normal((50, 4)))
+    rbm.save(tmp_path / "bare.npz")
+    with pytest.raises(ModelFileError, match="not a trained timbrel pipeline"):
+        load_pipeline(tmp_path / "bare.npz")
