@@ -4,12 +4,39 @@ set -euo pipefail
 PY=${PY:-.venv/bin/python}
 TIMBREL=${TIMBREL:-.venv/bin/timbrel}
 OUT=${OUT:-out/demo}
+CONFIG=${CONFIG:-configs/default.toml}
 mkdir -p "$OUT"
 start=$(date +%s)
+step() { echo; echo "== $*"; }
 
-echo "== 1/1 frames: demo_audio/manifest.csv -> $OUT/cache"
-"$TIMBREL" frames demo_audio/manifest.csv --out "$OUT/cache" --config configs/default.toml
+step "1/6 frames: demo_audio/manifest.csv -> $OUT/cache"
+"$TIMBREL" frames demo_audio/manifest.csv --out "$OUT/cache" --config "$CONFIG"
+
+step "2/6 fit: $OUT/cache -> $OUT/model.npz"
+"$TIMBREL" fit "$OUT/cache" --out "$OUT/model.npz" --config "$CONFIG"
+
+step "3/6 export: per-frame features -> $OUT/features (Parquet dataset)"
+"$TIMBREL" export demo_audio/manifest.csv --model "$OUT/model.npz" --out "$OUT/features" \
+  --pool mean,max,std --overwrite
+
+step "4/6 probe: learned features beside MFCC and log-mel baselines"
+"$TIMBREL" probe "$OUT/features" --label label --split-column split | tee "$OUT/probe.txt"
+
+step "5/6 inspect: the model, with pictures"
+"$TIMBREL" inspect "$OUT/model.npz" --plots "$OUT/pictures" | tee "$OUT/model.txt" | head -8
+first_clip=$(sed -n 2p demo_audio/manifest.csv | cut -d, -f1)
+"$TIMBREL" show "demo_audio/$first_clip" --model "$OUT/model.npz" --out "$OUT/pictures/clip.png"
+
+step "6/6 read the dataset back with pyarrow"
+"$PY" -c "import pyarrow.dataset as ds; t = ds.dataset('$OUT/features').to_table(); \
+print(t.num_rows, 'frames from', len(set(t.column('source').to_pylist())), 'clips;', \
+'columns:', ', '.join(t.column_names))"
 
 echo
 echo "demo finished in $(( $(date +%s) - start )) s; outputs:"
-echo "  frame cache     $OUT/cache  (failures: $OUT/cache/failures.csv)"
+echo "  frame cache      $OUT/cache  (failures: $OUT/cache/failures.csv)"
+echo "  model            $OUT/model.npz  (history: $OUT/model.npz.history.csv)"
+echo "  features         $OUT/features/part-*.parquet  (clip table: $OUT/features/_clips/)"
+echo "  probe table      $OUT/probe.txt"
+echo "  model summary    $OUT/model.txt"
+echo "  pictures         $OUT/pictures/*.png"

@@ -78,3 +78,44 @@ def test_python_dash_m_runs_the_same_command():
                             text=True, timeout=120)
     assert result.returncode == 0
     assert "frames" in result.stdout
+
+
+def test_fit_inspect_export_probe_chain(tmp_path):
+    # the whole chain through the command line on a tiny labelled set
+    rng = np.random.default_rng(8)
+    rows = ["path,label,split"]
+    t = np.arange(8000) / 16000
+    for i in range(8):
+        freq = 500.0 if i % 2 else 3000.0
+        y = 0.3 * np.sin(2 * np.pi * freq * t) + 0.01 * rng.standard_normal(t.size)
+        sf.write(tmp_path / f"c{i}.wav", y.astype(np.float32), 16000)
+        rows.append(f"c{i}.wav,{'ab'[i % 2]},{'train' if i < 6 else 'test'}")
+    (tmp_path / "m.csv").write_text("\n".join(rows) + "\n")
+    cache, model, ds = tmp_path / "cache", tmp_path / "model.npz", tmp_path / "ds"
+    sets = ["--set", "frontend.n_mels=12", "--set", "frontend.context=1"]
+    assert runner.invoke(app, ["frames", str(tmp_path / "m.csv"), "--out", str(cache), "-q",
+                               "-j", "1", *sets]).exit_code == 0
+    result = runner.invoke(app, ["fit", str(cache), "--out", str(model), "--hidden", "8",
+                                 "--epochs", "2", "--seed", "1", "-q"])
+    assert result.exit_code == 0, result.output
+    assert "trained 2 epochs" in result.output
+    result = runner.invoke(app, ["inspect", str(model), "--json"])
+    assert result.exit_code == 0
+    import json
+
+    summary = json.loads(result.output)
+    assert summary["n_hidden"] == 8 and summary["hidden"] == "relu"
+    result = runner.invoke(app, ["inspect", str(model)])
+    assert "sigma per band" in result.output
+    result = runner.invoke(app, ["export", str(tmp_path / "m.csv"), "--model", str(model),
+                                 "--out", str(ds), "-q", "-j", "1"])
+    assert result.exit_code == 0, result.output
+    assert "8 of 8 files exported" in result.output
+    result = runner.invoke(app, ["export", str(cache), "--model", str(model), "--out", str(ds),
+                                 "-q", "-j", "1", "--layout", "wide"])
+    assert result.exit_code == 1 and "layout" in result.output
+    result = runner.invoke(app, ["probe", str(ds), "--baseline", "mfcc"])
+    assert result.exit_code == 0, result.output
+    assert "rbm-relu" in result.output and "mfcc" in result.output
+    result = runner.invoke(app, ["inspect", str(tmp_path / "missing.npz")])
+    assert result.exit_code == 1 and "timbrel: error:" in result.output

@@ -241,6 +241,51 @@ def export_command(
         raise typer.Exit(EXIT_FAILED_FILES)
 
 
+@app.command("probe")
+def probe_command(
+    dataset: Annotated[Path, typer.Argument(exists=True, file_okay=False,
+                                            help="Dataset folder from `timbrel export`.")],
+    label: Annotated[str, typer.Option("--label", "-l", help="Column with each clip's class.")
+                     ] = "label",
+    split_column: Annotated[str, typer.Option(
+        "--split-column", help="Column with train/test per clip; if absent, k-fold over clips.")
+    ] = "split",
+    baseline: Annotated[str, typer.Option(
+        "--baseline", help="Hand-made baselines to compare: mfcc,logmel (empty for none).")
+    ] = "mfcc,logmel",
+    pool: Annotated[str, typer.Option("--pool", help="Pooling of frame features per clip.")
+                    ] = "mean,max",
+    folds: Annotated[int, typer.Option("--folds", min=2, help="Folds without a split column.")
+                     ] = 5,
+    audio_root: Annotated[Path | None, typer.Option(
+        "--audio-root", help="Where the clips' audio lives (default: as recorded at export).")
+    ] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
+) -> None:
+    """Do the features beat hand-made ones? A probe classifier beside MFCC and log-mel."""
+    import json
+
+    from .evaluation import probe
+
+    result = probe(dataset, label=label, split_column=split_column or None,
+                   baselines=[b.strip() for b in baseline.split(",") if b.strip()],
+                   pools=[p.strip() for p in pool.split(",") if p.strip()], folds=folds,
+                   audio_root=audio_root)
+    typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
+
+
+@app.command("show")
+def show_command(
+    audio: Annotated[Path, typer.Argument(help="Audio file to draw.")],
+    model: Annotated[Path, typer.Option("--model", "-m", help="Model file from `timbrel fit`.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="PNG file to write.")],
+) -> None:
+    """Draw a clip's log-mel spectrogram above its hidden activations over time."""
+    from .plots import draw_clip
+
+    typer.echo(f"picture: {draw_clip(audio, model, out)}")
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; return the exit code."""
     try:

@@ -420,11 +420,13 @@ def export(
         if foreign:
             raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
                               "pass --overwrite to replace them")
-        jobs, extra_columns, cache_path = _jobs(source, pipe, allow_outside=allow_outside)
+        jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
+                                                            allow_outside=allow_outside)
         metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
                     "hidden": pipe.rbm.hidden, "n_hidden": int(pipe.rbm.n_hidden),
                     "frontend": dataclasses.asdict(fe), "config": pipe.config.to_dict(),
                     "timbrel": __version__, "layout": layout, "pool": pools,
+                    "audio_root": audio_root,
                     "exported": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
         record = {**metadata, "complete": False, "extra_columns": extra_columns}
         _write_record(out, record)
@@ -462,8 +464,13 @@ def export(
                          failures=sorted(failures.items()))
 
 
+def _audio_root(source: Path) -> str:
+    """Folder that clip names are relative to: the folder itself, or a manifest's folder."""
+    return os.fsdecode((source if source.is_dir() else source.parent).absolute())
+
+
 def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
-          ) -> tuple[list[dict[str, Any]], list[str], str | None]:
+          ) -> tuple[list[dict[str, Any]], list[str], str | None, str]:
     src = Path(source)
     if src.is_dir() and (src / CACHE_MARKER).is_file():
         cache = FrameCache.open(src)
@@ -474,9 +481,9 @@ def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
         table = cache.index.to_pylist()
         jobs = [{"source": row["source"], "clip": i, "duration_s": row["duration_s"],
                  "extra": {c: row.get(c) or "" for c in extra}} for i, row in enumerate(table)]
-        return jobs, extra, str(src.absolute())
+        return jobs, extra, str(src.absolute()), _audio_root(Path(cache.marker["source"]))
     items, extra = discover(src, allow_outside=allow_outside)
-    return [_job(item) for item in items], extra, None
+    return [_job(item) for item in items], extra, None, _audio_root(src)
 
 
 def _job(item: AudioItem) -> dict[str, Any]:

@@ -1,0 +1,296 @@
+"""Knowing whether the features are good: a probe classifier beside hand-made baselines.
+
+:func:`probe` pools each clip's frame features from an exported dataset, trains a
+standardised multinomial logistic regression (scikit-learn) on the ``train`` split and
+reports on the ``test`` split, side by side with two baselines computed from the same
+audio in the same run: MFCCs with deltas and the model's own log-mel frames. Without a
+split column it uses stratified k-fold over clips, so frames of one clip never sit on
+both sides.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ._errors import ParameterError
+from .audio import load
+from .frontend import FrontEnd
+
+__all__ = ["BASELINES", "FRAME_POOLS", "ProbeResult", "ProbeScore", "pool_frames", "probe",
+           "read_clip_features"]
+
+BASELINES = ("mfcc", "logmel")
+FRAME_POOLS = ("mean", "max", "std")
+N_MFCC = 20
+
+
+def pool_frames(frames: np.ndarray, pools: Sequence[str]) -> np.ndarray:
+    """Concatenate poolings over time of one clip's frames.
+
+    Parameters
+    ----------
+    frames : np.ndarray, shape (n_frames, n_features)
+    pools : sequence of {"mean", "max", "std"}
+
+    Returns
+    -------
+    np.ndarray, shape (len(pools) * n_features,), float64
+    """
+    frames = np.asarray(frames, np.float64)
+    if frames.ndim != 2 or len(frames) == 0:
+        raise ParameterError(f"frames must be a non-empty 2-D array; got shape {frames.shape}")
+    parts = {"mean": lambda: frames.mean(axis=0), "max": lambda: frames.max(axis=0),
+             "std": lambda: frames.std(axis=0)}
+    bad = [p for p in pools if p not in parts]
+    if bad or not pools:
+        raise ParameterError(f"pools {list(pools)} must be a non-empty subset of {FRAME_POOLS}")
+    return np.concatenate([parts[p]() for p in pools])
+
+
+def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Sequence[str] = ()
+                       ) -> tuple[list[str], np.ndarray, dict[str, list[str]], dict[str, Any]]:
+    """Pool an exported frame dataset into one row per clip, streaming record batches.
+
+    Returns
+    -------
+    sources : list of str
+        Clip names, sorted.
+    features : np.ndarray, shape (n_clips, len(pools) * n_hidden)
+    extra : dict of column name to list of str
+        The requested manifest columns, one value per clip.
+    metadata : dict
+        The dataset's timbrel metadata (model checksum, front end, audio root, ...).
+    """
+    import pyarrow.dataset as pads
+
+    try:
+        ds = pads.dataset(str(dataset), format="parquet")
+    except (OSError, ValueError) as exc:
+        raise ParameterError(f"{dataset}: not a readable Parquet dataset ({exc})") from None
+    schema = ds.schema
+    raw_meta = (schema.metadata or {}).get(b"timbrel")
+    if raw_meta is None or "features" not in schema.names and "h0000" not in schema.names:
+        raise ParameterError(f"{dataset}: not a timbrel feature dataset")
+    metadata = json.loads(raw_meta)
+    missing = [c for c in columns if c not in schema.names]
+    if missing:
+        raise ParameterError(f"{dataset}: no column(s) {missing}; columns are {schema.names}")
+    wide = "features" not in schema.names
+    feature_cols = [n for n in schema.names if n.startswith("h") and n[1:].isdigit()] if wide \
+        else ["features"]
+    n_hidden = int(metadata["n_hidden"])
+    acc: dict[str, dict[str, Any]] = {}
+    for batch in ds.to_batches(columns=["source", *feature_cols, *columns]):
+        src = batch.column(0).to_numpy(zero_copy_only=False)
+        if wide:
+            feats = np.column_stack([batch.column(c).to_numpy() for c in feature_cols])
+        else:
+            feats = batch.column(1).values.to_numpy().reshape(-1, n_hidden)
+        feats = feats.astype(np.float64)
+        order = np.argsort(src, kind="stable")
+        src, feats = src[order], feats[order]
+        extras = {c: batch.column(c).to_numpy(zero_copy_only=False)[order] for c in columns}
+        cuts = np.flatnonzero(src[1:] != src[:-1]) + 1
+        for a, b in zip(np.r_[0, cuts], np.r_[cuts, len(src)], strict=True):
+            block = feats[a:b]
+            entry = acc.setdefault(src[a], {"n": 0, "sum": 0.0, "sq": 0.0, "max": -np.inf,
+                                            "extra": {c: str(extras[c][a]) for c in columns}})
+            entry["n"] += len(block)
+            entry["sum"] = entry["sum"] + block.sum(axis=0)
+            entry["sq"] = entry["sq"] + np.square(block).sum(axis=0)
+            entry["max"] = np.maximum(entry["max"], block.max(axis=0))
+    sources = sorted(acc)
+    rows = []
+    for s in sources:
+        e = acc[s]
+        mean = e["sum"] / e["n"]
+        parts = {"mean": mean, "max": e["max"],
+                 "std": np.sqrt(np.maximum(e["sq"] / e["n"] - mean ** 2, 0.0))}
+        rows.append(np.concatenate([parts[p] for p in pools]))
+    features = np.array(rows) if rows else np.zeros((0, len(pools) * n_hidden))
+    extra = {c: [acc[s]["extra"][c] for s in sources] for c in columns}
+    return sources, features, extra, metadata
+
+
+@dataclasses.dataclass
+class ProbeScore:
+    """One feature set's result on the held-out clips."""
+
+    name: str
+    n_features: int
+    accuracy: float
+    macro_f1: float
+    per_class_recall: dict[str, float]
+    confusion: list[list[int]]
+
+
+@dataclasses.dataclass
+class ProbeResult:
+    """Scores of the learned features and the baselines, plus how they were obtained."""
+
+    classes: list[str]
+    scheme: str
+    n_train: int
+    n_test: int
+    scores: list[ProbeScore]
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able form."""
+        return dataclasses.asdict(self)
+
+    def table(self) -> str:
+        """A side-by-side table for a person."""
+        counts = (f"{self.n_train} train / {self.n_test} test clips" if "fold" not in self.scheme
+                  else f"{self.n_test} clips, each scored once")
+        lines = [f"probe: multinomial logistic regression, {self.scheme}; "
+                 f"{counts}, {len(self.classes)} classes",
+                 f"{'features':<16}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}"]
+        for s in self.scores:
+            lines.append(f"{s.name:<16}{s.n_features:>6}{s.accuracy:>10.3f}{s.macro_f1:>10.3f}")
+        lines.append("per-class recall:")
+        width = max(len(c) for c in self.classes) + 2
+        lines.append(" " * width + "".join(f"{s.name[:12]:>14}" for s in self.scores))
+        for c in self.classes:
+            lines.append(f"{c:<{width}}" + "".join(f"{s.per_class_recall[c]:>14.3f}"
+                                                   for s in self.scores))
+        best = self.scores[0]
+        lines.append(f"confusion matrix of {best.name} (rows true, columns predicted):")
+        lines.append(" " * width + "".join(f"{c[:6]:>7}" for c in self.classes))
+        for c, row in zip(self.classes, best.confusion, strict=True):
+            lines.append(f"{c:<{width}}" + "".join(f"{v:>7d}" for v in row))
+        return "\n".join(lines)
+
+
+def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.ndarray:
+    import librosa
+
+    c = fe.config
+    rows = []
+    for path in paths:
+        y = load(path, sr=c.sample_rate, channel=c.channel)
+        if kind == "logmel":
+            rows.append(pool_frames(fe.frames(y, c.sample_rate), ("mean", "std")))
+            continue
+        # MFCCs with deltas from librosa, with the model's own framing and mel settings
+        mfcc = librosa.feature.mfcc(
+            y=y, sr=c.sample_rate, n_mfcc=N_MFCC, n_fft=c.fft_length, hop_length=c.hop_length,
+            win_length=c.win_length, window=c.window, n_mels=c.n_mels, fmin=c.fmin,
+            fmax=c.upper_frequency, htk=c.mel_scale == "htk", center=False)
+        width = min(9, mfcc.shape[1] if mfcc.shape[1] % 2 else mfcc.shape[1] - 1)
+        delta = (librosa.feature.delta(mfcc, width=width) if width >= 3
+                 else np.zeros_like(mfcc))
+        rows.append(pool_frames(np.vstack([mfcc, delta]).T, ("mean", "std")))
+    return np.array(rows)
+
+
+def _score(name: str, X: np.ndarray, y: np.ndarray, classes: list[str],
+           splits: list[tuple[np.ndarray, np.ndarray]], seed: int) -> ProbeScore:
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.metrics import confusion_matrix, f1_score, recall_score
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    truth, predicted = [], []
+    for train_idx, test_idx in splits:
+        model = make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000, C=1.0,
+                                                                   random_state=seed))
+        model.fit(X[train_idx], y[train_idx])
+        truth.append(y[test_idx])
+        predicted.append(model.predict(X[test_idx]))
+    t, p = np.concatenate(truth), np.concatenate(predicted)
+    recall = recall_score(t, p, labels=classes, average=None, zero_division=0)
+    return ProbeScore(
+        name=name, n_features=int(X.shape[1]), accuracy=float(np.mean(t == p)),
+        macro_f1=float(f1_score(t, p, labels=classes, average="macro", zero_division=0)),
+        per_class_recall={c: float(r) for c, r in zip(classes, recall, strict=True)},
+        confusion=confusion_matrix(t, p, labels=classes).tolist())
+
+
+def probe(
+    dataset: str | Path,
+    *,
+    label: str = "label",
+    split_column: str | None = "split",
+    baselines: Sequence[str] = BASELINES,
+    pools: Sequence[str] = ("mean", "max"),
+    folds: int = 5,
+    seed: int = 0,
+    audio_root: str | Path | None = None,
+) -> ProbeResult:
+    """Train and score a probe classifier on learned features and on baselines.
+
+    Parameters
+    ----------
+    dataset : str or Path
+        A frame dataset written by :func:`timbrel.export.export`.
+    label : str, default "label"
+        Column holding each clip's class.
+    split_column : str or None, default "split"
+        Column with ``train`` / ``test`` per clip. If None or absent, stratified
+        ``folds``-fold cross-validation over clips is used instead.
+    baselines : sequence of {"mfcc", "logmel"}, default both
+        Hand-made features computed from the same audio in the same run: MFCCs (20) with
+        deltas, mean- and std-pooled; the model's own log-mel frames, mean- and std-pooled.
+    pools : sequence of {"mean", "max", "std"}, default ("mean", "max")
+        Pooling of the learned frame features over each clip.
+    folds : int >= 2, default 5
+    seed : int, default 0
+    audio_root : str or Path, optional
+        Where the clips' audio lives (for the baselines); default: the folder recorded in
+        the dataset at export.
+
+    Returns
+    -------
+    ProbeResult
+        ``scores[0]`` is the learned features', then one per baseline.
+    """
+    bad = [b for b in baselines if b not in BASELINES]
+    if bad:
+        raise ParameterError(f"baseline(s) {bad} not among {', '.join(BASELINES)}")
+    import pyarrow.dataset as pads
+
+    names = pads.dataset(str(dataset), format="parquet").schema.names
+    use_split = split_column is not None and split_column in names
+    columns = [label, *([split_column] if use_split else [])]
+    sources, X, extra, meta = read_clip_features(dataset, pools, columns=columns)
+    y = np.array(extra[label])
+    classes = sorted(set(y.tolist()))
+    if len(classes) < 2:
+        raise ParameterError(f"{dataset}: column {label!r} holds fewer than two classes")
+    if use_split:
+        split = np.array(extra[split_column])
+        train_idx, test_idx = np.flatnonzero(split == "train"), np.flatnonzero(split == "test")
+        if len(train_idx) == 0 or len(test_idx) == 0:
+            raise ParameterError(f"{dataset}: column {split_column!r} needs both 'train' and "
+                                 "'test' clips")
+        splits = [(train_idx, test_idx)]
+        scheme = f"train/test from column {split_column!r}"
+    else:
+        from sklearn.model_selection import StratifiedKFold
+
+        if folds < 2:
+            raise ParameterError(f"folds = {folds} must be >= 2")
+        counts = min(np.unique(y, return_counts=True)[1])
+        k = int(min(folds, counts))
+        if k < 2:
+            raise ParameterError(f"{dataset}: a class has fewer than 2 clips; cannot cross-validate")
+        splits = list(StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(X, y))
+        scheme = f"stratified {k}-fold over clips"
+    scores = [_score(f"rbm-{meta.get('hidden', '?')}", X, y, classes, splits, seed)]
+    if baselines:
+        root = Path(audio_root or meta.get("audio_root", "."))
+        from .config import FrontEndConfig
+
+        fe = FrontEnd(FrontEndConfig(**meta["frontend"]))
+        paths = [root / s for s in sources]
+        for kind in baselines:
+            scores.append(_score(kind, _baseline_features(kind, paths, fe), y, classes, splits,
+                                 seed))
+    return ProbeResult(classes=classes, scheme=scheme, n_train=int(len(splits[0][0])),
+                       n_test=int(sum(len(t) for _, t in splits)), scores=scores)

@@ -1,0 +1,108 @@
+"""Tests of timbrel.evaluation: pooling, the probe, and the spoken-word quality check."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow.dataset as pads
+import pytest
+import soundfile as sf
+
+from timbrel import ParameterError
+from timbrel.cache import build_cache
+from timbrel.config import load_config
+from timbrel.evaluation import pool_frames, probe, read_clip_features
+from timbrel.export import export
+from timbrel.training import train
+
+
+@pytest.mark.parametrize("pools", [("mean",), ("mean", "max"), ("max", "std", "mean")])
+def test_pool_frames_concatenates_numpy_poolings(pools):
+    frames = np.random.default_rng(1).standard_normal((30, 4))
+    ref = {"mean": frames.mean(0), "max": frames.max(0), "std": frames.std(0)}
+    np.testing.assert_allclose(pool_frames(frames, pools), np.concatenate([ref[p] for p in pools]))
+
+
+@pytest.mark.parametrize("pools", [(), ("median",)])
+def test_pool_frames_refuses_unknown_pools(pools):
+    with pytest.raises(ParameterError):
+        pool_frames(np.ones((3, 2)), pools)
+
+
+@pytest.fixture(scope="module")
+def tones(tmp_path_factory):
+    """Three classes of tone pattern, six clips each, split 4/2."""
+    root = tmp_path_factory.mktemp("probe")
+    rng = np.random.default_rng(2)
+    sr = 16000
+    t = np.arange(int(0.5 * sr)) / sr
+    rows = ["path,label,split"]
+    for k, (name, freq) in enumerate([("low", 300.0), ("mid", 1200.0), ("high", 4000.0)]):
+        for i in range(6):
+            f = freq * (1 + 0.05 * rng.standard_normal())
+            y = 0.3 * np.sin(2 * np.pi * f * t) + 0.02 * rng.standard_normal(t.size)
+            sf.write(root / f"{name}{i}.wav", y.astype(np.float32), sr)
+            rows.append(f"{name}{i}.wav,{name},{'train' if i < 4 else 'test'}")
+    (root / "manifest.csv").write_text("\n".join(rows) + "\n")
+    config = load_config(overrides=["frontend.n_mels=16", "frontend.context=1",
+                                    "model.n_hidden=16", "model.epochs=3", "model.seed=1"])
+    build_cache(root / "manifest.csv", root / "cache", config=config, workers=1)
+    train(root / "cache", root / "model.npz", config=config)
+    export(root / "manifest.csv", root / "model.npz", root / "ds", workers=1)
+    return root
+
+
+def test_clip_features_equal_pooled_frames_read_by_pyarrow(tones):
+    sources, X, extra, meta = read_clip_features(tones / "ds", ("mean", "max"),
+                                                 columns=["label"])
+    table = pads.dataset(tones / "ds").to_table()  # outside reader: pyarrow.dataset
+    for i, src in enumerate(sources):
+        rows = table.filter(pads.field("source") == src)
+        feats = np.stack(rows.column("features").to_numpy(zero_copy_only=False))
+        np.testing.assert_allclose(X[i], pool_frames(feats, ("mean", "max")), rtol=1e-6,
+                                   atol=1e-6)
+    assert extra["label"][0] == "high" and meta["n_hidden"] == 16
+
+
+def test_probe_separates_tones_and_reports_baselines(tones):
+    # three tones an octave and more apart: any reasonable feature set separates them
+    result = probe(tones / "ds")
+    assert [s.name for s in result.scores] == ["rbm-relu", "mfcc", "logmel"]
+    assert result.classes == ["high", "low", "mid"]
+    assert (result.n_train, result.n_test) == (12, 6)
+    for score in result.scores:
+        assert score.accuracy == pytest.approx(1.0)
+        assert np.sum(score.confusion) == 6
+    assert "macro-F1" in result.table()
+
+
+def test_probe_without_split_uses_folds_over_clips(tones):
+    result = probe(tones / "ds", split_column=None, baselines=(), folds=3)
+    assert "3-fold" in result.scheme
+    assert result.n_test == 18  # every clip scored once
+    assert len(result.scores) == 1
+
+
+def test_probe_errors_name_the_problem(tones, tmp_path):
+    with pytest.raises(ParameterError, match="no column"):
+        probe(tones / "ds", label="species")
+    with pytest.raises(ParameterError, match="baseline"):
+        probe(tones / "ds", baselines=("spectral",))
+    with pytest.raises(ParameterError, match="folds = 1 must be >= 2"):
+        probe(tones / "ds", baselines=(), split_column=None, folds=1)
+    with pytest.raises(ParameterError, match="not a readable Parquet dataset|not a timbrel"):
+        probe(tmp_path)
+
+
+@pytest.mark.speech
+def test_default_relu_features_beat_chance_on_unseen_voices(spoken_words, tmp_path):
+    # Real speech from espeak-ng (Debian): 12 words, train voices and test voices disjoint.
+    # The default configuration's relu features must beat chance (1/12) by a wide margin.
+    config = load_config()
+    build_cache(spoken_words, tmp_path / "cache", config=config)
+    train(tmp_path / "cache", tmp_path / "model.npz", config=config)
+    export(tmp_path / "cache", tmp_path / "model.npz", tmp_path / "ds")
+    result = probe(tmp_path / "ds", baselines=("mfcc",))
+    rbm, mfcc = result.scores
+    assert rbm.name == "rbm-relu"
+    assert rbm.accuracy > 0.8, result.table()
+    assert mfcc.accuracy > 0.5, result.table()  # the baseline itself is sane
