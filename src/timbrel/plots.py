@@ -58,7 +58,7 @@ RECEPTIVE_FIELDS_FILE = "receptive_fields.png"
 SIGMA_FILE = "sigma_per_band.png"
 TRAINING_CURVES_FILE = "training_curves.png"
 
-#: Figure sizes in inches; a PNG is ``figsize * dpi`` pixels (no tight cropping).
+#: Figure sizes in inches; a PNG is ``int(figsize * dpi)`` pixels (no tight cropping).
 SIGMA_FIGSIZE = (8.0, 4.5)
 CURVES_FIGSIZE = (12.0, 7.0)
 CLIP_FIGSIZE = (11.0, 7.0)
@@ -360,7 +360,7 @@ def draw_model(
     n_units : int, default 16
         Receptive fields to show, in [1, 100]; fewer if the model has fewer units.
     dpi : float, default 100
-        Pixels per inch, in [10, 600]. Each PNG is ``figsize * dpi`` pixels: see
+        Pixels per inch, in [10, 600]. Each PNG is ``int(figsize * dpi)`` pixels: see
         :func:`receptive_fields_figsize`, ``SIGMA_FIGSIZE`` and ``CURVES_FIGSIZE``.
 
     Returns
@@ -601,7 +601,7 @@ def draw_clip(
         A model file written by :func:`timbrel.training.train`.
     out_file : str or Path
         PNG to write (parent folders are created; an existing file is replaced
-        atomically). ``CLIP_FIGSIZE * dpi`` pixels.
+        atomically). ``int(CLIP_FIGSIZE * dpi)`` pixels.
     order : {"peak_time", "strength"}, default "peak_time"
         How hidden units are sorted from bottom to top: by the time of their largest
         activation in this clip (units silent throughout go on top), or by filter norm
