@@ -211,15 +211,24 @@ def test_strength_order_is_descending_strength():
         order_units(np.zeros((5, 20)), by="loudest")
 
 
-@pytest.mark.parametrize("n_shown, grid", [(1, (1, 1)), (5, (3, 2)), (9, (3, 3)),
-                                           (16, (4, 4)), (25, (5, 5)), (26, (6, 5))])
-def test_receptive_field_grid_grows_with_the_panels(n_shown, grid):
+@pytest.mark.parametrize("n_shown, grid", [(9, (3, 3)), (12, (4, 3)), (16, (4, 4)),
+                                           (25, (5, 5)), (26, (6, 5)), (100, (10, 10))])
+def test_receptive_field_grid_gives_each_panel_two_inches(n_shown, grid):
     width, height = receptive_fields_figsize(n_shown)
-    small_w, small_h = receptive_fields_figsize(1)
-    cols, rows = grid
-    # each extra column or row adds one panel's size
-    assert width - small_w == pytest.approx((cols - 1) * (small_w - 1.5))
-    assert height - small_h == pytest.approx((rows - 1) * (small_h - 1.0))
+    cols, rows = grid  # a near-square grid, columns = ceil(sqrt(n))
+    assert cols * 2.0 < width <= cols * 2.0 + 2.0
+    assert rows * 2.0 < height <= rows * 2.0 + 2.0
+
+
+def test_receptive_field_figure_never_shrinks_as_panels_are_added():
+    sizes = np.array([receptive_fields_figsize(n) for n in range(1, 101)])
+    assert np.all(np.diff(sizes, axis=0) >= 0)
+
+
+@pytest.mark.parametrize("n_shown", [1, 2, 3, 4])
+def test_a_few_receptive_fields_keep_a_readable_figure(n_shown):
+    width, height = receptive_fields_figsize(n_shown)
+    assert width >= 7.5 and height >= 4.5
 
 
 # ---------------------------------------------------------------------- draw_model

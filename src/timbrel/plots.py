@@ -64,7 +64,8 @@ CURVES_FIGSIZE = (12.0, 7.0)
 CLIP_FIGSIZE = (11.0, 7.0)
 #: One receptive-field panel, and the margin around the grid (title, labels, colour bar).
 _FIELD_CELL = (2.0, 2.0)
-_FIELD_MARGIN = (1.5, 1.0)
+_FIELD_MARGIN = (1.5, 1.2)
+_FIELD_MIN = (7.5, 4.5)
 
 #: Ways :func:`order_units` can sort hidden units.
 UNIT_ORDERS = ("peak_time", "strength")
@@ -235,10 +236,13 @@ def order_units(
 def receptive_fields_figsize(n_shown: int) -> tuple[float, float]:
     """Size in inches of the receptive-field grid for ``n_shown`` panels (≥ 1).
 
-    Panels fill a near-square grid of ``ceil(sqrt(n))`` columns.
+    Panels fill a near-square grid of ``ceil(sqrt(n))`` columns; the figure is at least
+    7.5 × 4.5 inches.
     """
     cols, rows = _grid(n_shown)
-    return (cols * _FIELD_CELL[0] + _FIELD_MARGIN[0], rows * _FIELD_CELL[1] + _FIELD_MARGIN[1])
+    # a floor on the size keeps the two title lines and the colour bar label readable
+    return (max(cols * _FIELD_CELL[0] + _FIELD_MARGIN[0], _FIELD_MIN[0]),
+            max(rows * _FIELD_CELL[1] + _FIELD_MARGIN[1], _FIELD_MIN[1]))
 
 
 def _grid(n: int) -> tuple[int, int]:
@@ -438,11 +442,12 @@ def _receptive_fields_figure(pipe: FeaturePipeline, n_units: int, *, dpi: float,
                   fontsize=10)
     fig.supylabel("mel band centre frequency (Hz)", fontsize=10)
     fig.suptitle(f"{name}: filters W/σ² of the {len(shown)} strongest of "
-                 f"{fields.shape[0]} hidden units (ranked by ‖W/σ²‖)", fontsize=12)
+                 f"{fields.shape[0]} hidden units (ranked by ‖W/σ²‖)\n"
+                 "red: energy above the band's mean drives the unit on, blue holds it off",
+                 fontsize=11)
     if image is not None:
         bar = fig.colorbar(image, ax=axes, shrink=0.6, pad=0.02)
-        bar.set_label("filter ÷ the panel's ± value (red: energy above the band mean "
-                      "turns the unit on)", fontsize=9)
+        bar.set_label("W/σ² ÷ the panel's ± value", fontsize=9)
         bar.ax.tick_params(labelsize=8)
     return fig
 
