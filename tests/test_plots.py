@@ -231,6 +231,16 @@ def test_a_few_receptive_fields_keep_a_readable_figure(n_shown):
     assert width >= 7.5 and height >= 4.5
 
 
+@pytest.mark.parametrize("context", [0, 1, 2, 5, 20, 50])
+def test_offset_ticks_are_whole_frames_around_zero(context):
+    from timbrel.plots import _offset_ticks
+
+    ticks = _offset_ticks(context)
+    assert 0 in ticks and len(ticks) <= 8
+    assert np.all(np.abs(ticks) <= context)
+    assert np.issubdtype(ticks.dtype, np.integer)
+
+
 # ---------------------------------------------------------------------- draw_model
 
 

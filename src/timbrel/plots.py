@@ -436,7 +436,7 @@ def _receptive_fields_figure(pipe: FeaturePipeline, n_units: int, *, dpi: float,
         _label_bands(ax, fe, min_gap=0.14)
         ax.tick_params(labelsize=8, labelleft=col == 0,
                        labelbottom=row == rows - 1 or k + cols >= len(shown))
-        ax.xaxis.set_major_locator(_integer_locator(7))
+        ax.set_xticks(_offset_ticks(fe.context))
     hop = fe.hop_length / fe.sample_rate * 1000.0
     fig.supxlabel(f"frame offset in the context window (1 frame = {hop:g} ms hop)",
                   fontsize=10)
@@ -450,6 +450,12 @@ def _receptive_fields_figure(pipe: FeaturePipeline, n_units: int, *, dpi: float,
         bar.set_label("W/σ² ÷ the panel's ± value", fontsize=9)
         bar.ax.tick_params(labelsize=8)
     return fig
+
+
+def _offset_ticks(context: int) -> np.ndarray:
+    """Whole frame offsets, including 0, at most about seven of them."""
+    step = max(1, math.ceil((2 * context + 1) / 7))
+    return np.arange(-(context // step) * step, context + 1, step)
 
 
 def _integer_locator(n_bins: int) -> Any:
@@ -474,7 +480,8 @@ def _sigma_figure(pipe: FeaturePipeline, summary: dict[str, Any], *, dpi: float,
         ax.fill_between(bands, per_unit.min(axis=0), per_unit.max(axis=0), color="C0",
                         alpha=0.2, linewidth=0, label="range over context positions")
     ax.plot(bands, sigma_band, marker="o", markersize=4, color="C0", linewidth=1.8,
-            label="learned σ (mean over context positions)")
+            label="learned σ" + (" (mean over context positions)" if fe.n_positions > 1
+                                 else ""))
     # bands are equally spaced in mels: a band axis keeps the points evenly spread,
     # with round frequencies as ticks
     positions, labels = _hz_ticks(fe, min_gap=0.06)
