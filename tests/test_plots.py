@@ -231,6 +231,28 @@ def test_a_few_receptive_fields_keep_a_readable_figure(n_shown):
     assert width >= 7.5 and height >= 4.5
 
 
+@pytest.mark.parametrize("n_mels, fmin, fmax", [(40, 0.0, None), (16, 0.0, None),
+                                                (64, 1000.0, 1500.0), (3, 200.0, 400.0),
+                                                (1, 0.0, None)])
+def test_hz_ticks_sit_at_the_frequency_they_name(n_mels, fmin, fmax):
+    from timbrel.plots import _hz_ticks
+
+    fe = FrontEndConfig(n_mels=n_mels, fmin=fmin, fmax=fmax)
+    positions, labels = _hz_ticks(fe, min_gap=0.1)
+    assert len(positions) >= 1 and len(positions) == len(labels)
+    if n_mels > 1:
+        assert len(positions) >= 2
+    assert np.all((positions >= -0.5) & (positions <= n_mels - 0.5))
+    named = np.array([float(t[:-1]) * 1000 if t.endswith("k") else float(t) for t in labels])
+    exact = np.isclose(band_position(named, fe), positions, rtol=0, atol=1e-9)
+    # otherwise the tick is a band centre labelled to three significant figures, which
+    # rounds by at most half a unit of the third figure: 0.5%
+    centres = band_centres(fe)
+    for pos, hz in zip(positions[~exact], named[~exact], strict=True):
+        assert pos == int(pos)
+        assert abs(hz - centres[int(pos)]) <= 0.005 * centres[int(pos)]
+
+
 @pytest.mark.parametrize("context", [0, 1, 2, 5, 20, 50])
 def test_offset_ticks_are_whole_frames_around_zero(context):
     from timbrel.plots import _offset_ticks

@@ -258,8 +258,7 @@ def _hz_ticks(frontend: FrontEndConfig, *, min_gap: float) -> tuple[np.ndarray, 
     candidates = [m * 10.0 ** e for e in range(1, 6) for m in (1, 2, 5)]
     span = max(n, 1)
     chosen: list[tuple[float, float]] = []
-    # from the top down: high bands are the crowded end only in Hz, not in mels, so this
-    # keeps the round kHz values and drops low ones that would touch
+    # from the top down, so the kHz values stay and a low value that would touch one goes
     for hz in sorted(candidates, reverse=True):
         pos = float(band_position(hz, frontend))
         if not -0.5 <= pos <= n - 0.5:
@@ -268,15 +267,23 @@ def _hz_ticks(frontend: FrontEndConfig, *, min_gap: float) -> tuple[np.ndarray, 
             continue
         chosen.append((hz, pos))
     chosen.reverse()
-    return (np.array([p for _, p in chosen]),
-            [f"{hz / 1000:g}k" if hz >= 1000 else f"{hz:g}" for hz, _ in chosen])
+    if len(chosen) < 2:
+        # a narrow band range holds at most one round value: label band centres instead
+        bands = sorted({0, n // 2, n - 1})
+        centres = band_centres(frontend)
+        chosen = [(float(f"{centres[b]:.3g}"), float(b)) for b in bands]
+    return (np.array([p for _, p in chosen]), [_hz_text(hz) for hz, _ in chosen])
+
+
+def _hz_text(hz: float) -> str:
+    return f"{hz / 1000:g}k" if hz >= 1000 else f"{hz:g}"
 
 
 def _history_series(history: Sequence[dict[str, Any]], key: str) -> np.ndarray:
     values = []
     for row in history:
         v = row.get(key)
-        values.append(float(v) if isinstance(v, (int, float)) and v is not None else np.nan)
+        values.append(float(v) if isinstance(v, (int, float)) else np.nan)  # None: not finite
     return np.asarray(values, np.float64)
 
 
