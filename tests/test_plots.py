@@ -276,6 +276,7 @@ def test_draw_model_writes_three_readable_sized_non_blank_pngs(drawn, model_file
     min_chromatic = [0.05, 0.003, 0.003]
     for path, figsize, share in zip(drawn, sizes, min_chromatic, strict=True):
         assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083)
+        assert path.stat().st_mode & 0o044 == 0o044  # readable by group and others
         rgb = _read_png(path)
         assert rgb.shape[:2] == _pixels(figsize, 80)
         _assert_not_blank(rgb, min_chromatic=share)
@@ -339,6 +340,8 @@ def test_draw_clip_on_a_chirp_writes_a_sized_non_blank_png(chirp_file, model_fil
                                                             order):
     out = draw_clip(chirp_file, model_file, tmp_path / "deep" / "clip.png", order=order, dpi=60)
     assert out == tmp_path / "deep" / "clip.png"
+    assert out.stat().st_mode & 0o044 == 0o044
+    assert [p.name for p in out.parent.iterdir()] == ["clip.png"]  # no temporary left
     rgb = _read_png(out)
     assert rgb.shape[:2] == _pixels(CLIP_FIGSIZE, 60)
     _assert_not_blank(rgb, min_chromatic=0.3)  # two colour-mapped images fill the figure

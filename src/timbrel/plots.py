@@ -17,6 +17,7 @@ after a function returns.
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -312,6 +313,8 @@ def _save(fig: Figure, path: Path, *, title: str) -> Path:
     with atomic_path(path) as tmp:
         # the temporary name ends in ".part", so the format is given, not guessed
         fig.savefig(tmp, format="png", dpi=fig.dpi, metadata={"Title": title})
+        # the temporary file is created private (0600); a picture is for sharing
+        os.chmod(tmp, 0o644)
     fig.clear()
     return path
 
