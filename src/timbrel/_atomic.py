@@ -23,6 +23,10 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
     os.close(fd)
     tmp_path = Path(tmp)
+    # mkstemp makes files private (0600); published outputs get the usual mode instead
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp_path, 0o666 & ~umask)
     try:
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
