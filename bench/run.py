@@ -34,7 +34,10 @@ def main() -> None:
             print(f"{name}: missing, skipped")
             continue
         print(f"== {name}")
-        results[name] = _load(name).main([])
+        figures = HERE / f".{name}.json"
+        _load(name).main(["--json", str(figures)])
+        results[name] = json.loads(figures.read_text())
+        figures.unlink()
     args.out.write_text(json.dumps(results, indent=1))
     print(f"figures written to {args.out}")
 
