@@ -457,8 +457,9 @@ def test_divergence_is_rolled_back_and_retried(rng, hidden, reason):
     # Learning rates far above what these units tolerate (Hinton 2010 suggests ~1e-3 for
     # Gaussian visibles): relu overflows to inf, binary hiddens blow up finitely.
     data = structured_data(rng)
+    # The step limit is off (0): this checks the guard alone (the limit is tested below).
     settings_ = dict(n_hidden=8, hidden=hidden, learn_variance=False, seed=0, max_rollbacks=20,
-                     learning_rate=1.0 if hidden == "binary" else 30.0)
+                     learning_rate=1.0 if hidden == "binary" else 30.0, max_step=0)
     model = RBM(**settings_).initialize(12, visible_mean=data.mean(0))
     state = model.get_state()  # the good state before the epoch
     with pytest.warns(DivergenceWarning, match="rolled back"):
@@ -482,11 +483,40 @@ def test_divergence_is_rolled_back_and_retried(rng, hidden, reason):
     np.testing.assert_array_equal(model.hidden_bias_, replay.hidden_bias_)
 
 
+@pytest.mark.parametrize("hidden", ["relu", "binary", "stepped"])
+def test_step_limit_keeps_a_runaway_learning_rate_finite(rng, hidden):
+    # The same runaway rate as above, with the default step limit (gradient-norm
+    # clipping, Pascanu, Mikolov & Bengio 2013): every step is at most max_step of the
+    # weights' norm, so training stays finite without a rollback, and says how often
+    # it limited a step.
+    data = structured_data(rng)
+    model = RBM(n_hidden=8, hidden=hidden, seed=0, learning_rate=30.0, max_rollbacks=0)
+    model.initialize(12, visible_mean=data.mean(0))
+    norms = [float(np.linalg.norm(model.weights_))]
+    for epoch in range(3):
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", DivergenceWarning)
+            stats = model.fit_epoch(batches_of(data), epoch=epoch)
+        assert stats["rollbacks"] == 0
+        assert stats["limited_steps"] >= 1
+        norms.append(float(np.linalg.norm(model.weights_)))
+    assert np.isfinite(model.weights_).all() and np.isfinite(model.sigma_).all()
+    # each epoch has 16 minibatches; with momentum 0.5 a step is at most 2 x 5 % of the norm
+    growth = np.array(norms[1:]) / np.array(norms[:-1])
+    assert (growth <= (1 + 2 * model.max_step) ** 16).all()
+
+
+@pytest.mark.parametrize("max_step", [-0.1, float("nan"), float("inf"), "big"])
+def test_step_limit_must_be_a_finite_share(max_step):
+    with pytest.raises(ParameterError, match="max_step"):
+        RBM(max_step=max_step).initialize(4)
+
+
 def test_repeated_divergence_raises_and_keeps_the_good_state(rng):
     data = structured_data(rng)
     model = RBM(n_hidden=8, learning_rate=1e-3, seed=0, max_rollbacks=3).fit(data[:256])
     before = model.get_state()
-    model.set_params(learning_rate=1e4, variance_learning_rate=1e3)
+    model.set_params(learning_rate=1e4, variance_learning_rate=1e3, max_step=0)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         with pytest.raises(DivergenceError, match="diverged in epoch"):

@@ -118,7 +118,7 @@ def test_divergence_is_rolled_back_and_reported(tmp_path, cache_dir):
     try:
         result = train(cache_dir, tmp_path / "hot.npz", log=lines.append,
                        config=_config(learning_rate=5.0, variance_learning_rate=1.0,
-                                      max_rollbacks=8))
+                                      max_rollbacks=8, max_step=0))
     except DivergenceError as exc:
         assert "diverge" in str(exc).lower()
         return
@@ -132,7 +132,7 @@ def test_hopeless_learning_rate_stops_with_a_clear_error(tmp_path, cache_dir):
     with pytest.raises(DivergenceError):
         train(cache_dir, tmp_path / "x.npz",
               config=_config(learning_rate=1e6, variance_learning_rate=1e3, max_rollbacks=1,
-                             initial_momentum=0.0, final_momentum=0.0))
+                             initial_momentum=0.0, final_momentum=0.0, max_step=0))
     assert not (tmp_path / "x.npz").exists()
 
 

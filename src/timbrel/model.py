@@ -280,6 +280,7 @@ class _EpochTally:
     total_spread: float = 0.0
     activity: float = 0.0
     first_relative_error: float | None = None
+    limited_steps: int = 0
     max_input: np.ndarray = field(default_factory=lambda: np.empty(0, _F32))
 
     def __post_init__(self) -> None:
@@ -383,6 +384,14 @@ class RBM:
         Starting σ for every Gaussian visible, within the bounds.
     weight_scale : float, default=0.01
         Standard deviation of the initial weights, > 0 (Hinton 2010, sec. 8).
+    max_step : float, default=0.05
+        Limit on one minibatch's weight step, as a share of the weights' Frobenius
+        norm (at least that of the initial weights): a larger gradient is scaled down,
+        biases and log-variances with it (gradient-norm clipping, Pascanu, Mikolov &
+        Bengio 2013).  With rectified hiddens a single Gibbs step can amplify the
+        reconstruction when the loop gain Wᵀ diag(1/σ²) W nears 1, and one such
+        minibatch would otherwise throw the weights far away.  0 turns it off.
+        The epoch's count of limited steps is reported as ``limited_steps``.
     divergence_factor : float, default=3.0
         An epoch counts as diverged when its relative reconstruction error exceeds both
         1 (worse than the minibatch mean) and this factor times the larger of the
@@ -458,6 +467,7 @@ class RBM:
         sigma_ceiling: float = 20.0,
         initial_sigma: float = 1.0,
         weight_scale: float = 0.01,
+        max_step: float = 0.05,
         divergence_factor: float = 3.0,
         max_rollbacks: int = 5,
         warm_start: bool = False,
@@ -487,6 +497,7 @@ class RBM:
         self.sigma_ceiling = sigma_ceiling
         self.initial_sigma = initial_sigma
         self.weight_scale = weight_scale
+        self.max_step = max_step
         self.divergence_factor = divergence_factor
         self.max_rollbacks = max_rollbacks
         self.warm_start = warm_start
@@ -625,6 +636,7 @@ class RBM:
         real("initial_sigma", float(self.sigma_floor), float(self.sigma_ceiling),
              high_open=False)
         real("weight_scale", 0.0, low_open=True)
+        real("max_step", 0.0)
         real("divergence_factor", 1.0, low_open=True)
         integer("max_rollbacks", 0)
         boolean("warm_start")
@@ -1471,11 +1483,30 @@ class RBM:
             )
             if not math.isfinite(tally.squared_error):
                 return tally, f"non-finite reconstruction error at minibatch {index}"
+            if self.max_step > 0:
+                grads = self._limit_step(grads, tally)
             self._apply_update(*grads, momentum=momentum, rate=rate,
                                variance_rate=variance_rate)
         if tally.rows == 0:
             raise ParameterError("make_batches() yielded no minibatches")
         return tally, None
+
+    def _limit_step(self, grads: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None],
+                    tally: _EpochTally
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+        """Scale one minibatch's gradients so the weight step stays below ``max_step``."""
+        grad_weights = grads[0]
+        floor = self.weight_scale * math.sqrt(grad_weights.size)
+        limit = float(self.max_step) * max(float(np.linalg.norm(self.weights_)), floor)
+        norm = float(np.linalg.norm(grad_weights))
+        if not norm > limit:  # also passes NaN on, for the guard to catch
+            return grads
+        tally.limited_steps += 1
+        shrink = _F32(limit / norm)
+        grad_weights *= shrink
+        grad_visible, grad_hidden, grad_log_var = grads[1:]
+        return (grad_weights, grad_visible * shrink, grad_hidden * shrink,
+                None if grad_log_var is None else grad_log_var * shrink)
 
     def _epoch_failure(self, tally: _EpochTally) -> str | None:
         if not self._parameters_finite():
@@ -1588,6 +1619,7 @@ class RBM:
             "sigma_max": float(self._sigma.max()),
             "rollbacks": len(reasons),
             "rollback_reasons": reasons,
+            "limited_steps": tally.limited_steps,
             "learning_rate_scale": float(self.learning_rate_scale_),
             "momentum": momentum,
             "n_rows": tally.rows,

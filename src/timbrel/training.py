@@ -307,7 +307,8 @@ def _epoch_line(f: dict[str, Any]) -> str:
             f"FE gap {f.get('free_energy_gap', float('nan')):+.2f} "
             f"active {f.get('mean_hidden_activity', float('nan')):.3f} "
             f"dead {f.get('dead_fraction', float('nan')):.0%} "
-            f"sigma {f.get('sigma_min', float('nan')):.2f}-{f.get('sigma_max', float('nan')):.2f}")
+            f"sigma {f.get('sigma_min', float('nan')):.2f}-{f.get('sigma_max', float('nan')):.2f}"
+            + (f" limited {f['limited_steps']}" if f.get("limited_steps") else ""))
 
 
 def _monitor(rbm: RBM, train_probe: np.ndarray, val_probe: np.ndarray) -> dict[str, float]:
