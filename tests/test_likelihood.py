@@ -181,7 +181,8 @@ def test_ais_for_stepped_and_rectified_units_matches_scipy_quad(hidden, copies):
         # in one dimension the finite-Z condition is exact: positive and negative weights'
         # squares each sum below 1 (0.77 and 0.61); the general bound must not call it
         # infinite (its spectral test, 1.17 here, cannot decide)
-        assert relu_partition_bound(rbm)["finite"] is not False
+        bound = relu_partition_bound(rbm)
+        assert bound["finite"] is None and bound["largest_q"] == pytest.approx(0.77, abs=1e-6)
 
 
 # ------------------------------------------------------------------ AIS against enumeration
@@ -298,6 +299,14 @@ def test_relu_bound_tells_finite_from_infinite():
     large = _tiny(4, 3, weight_scale=3.0, seed=2, hidden="relu")
     bound = relu_partition_bound(large)
     assert bound["finite"] is False and bound["max_column_norm"] > 1
+    # columns of norm 0.854 < 1 that point close together: along u = (1, 1)/√2 each has
+    # w·u = 1.1/√2, so q(u) = 2 · 1.21/2 = 1.21 > 1 (worked by hand) and Z is infinite
+    pair = _tiny(2, 2, weight_scale=0.0, seed=2, hidden="relu")
+    pair.weights_ = np.array([[0.8, 0.3], [0.3, 0.8]], np.float32)
+    pair.sigma_ = np.ones(2, np.float32)
+    bound = relu_partition_bound(pair)
+    assert bound["max_column_norm"] < 1 and bound["spectral_norm"] > 1
+    assert bound["finite"] is False and bound["largest_q"] == pytest.approx(1.21, abs=1e-6)
 
 
 def test_stepped_form_of_relu_equals_the_models_free_energy_on_the_data():
@@ -382,6 +391,7 @@ def test_score_command_runs_ais_for_rectified_units(small_cache):
     assert result.exit_code == 0, result.output
     assert "AIS, 8 chains x 40 temperatures" in result.output
     assert "annealed as stepped units with" in result.output
+    assert "the rectified model's own Z is" in result.output
     report = json.loads(runner.invoke(app, ["score", str(model), str(small_cache), "--runs",
                                             "8", "--temperatures", "40", "--max-frames", "50",
                                             "--json"]).output)
