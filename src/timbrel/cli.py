@@ -274,6 +274,31 @@ def probe_command(
     typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
 
 
+@app.command("score")
+def score_command(
+    model: Annotated[Path, typer.Argument(help="Model file from `timbrel fit`.")],
+    cache: Annotated[Path, typer.Argument(help="Frame cache to score (e.g. the training one).")],
+    runs: Annotated[int, typer.Option("--runs", min=2, help="AIS chains (independent runs).")
+                    ] = 100,
+    temperatures: Annotated[int, typer.Option(
+        "--temperatures", min=1, help="AIS intermediate distributions.")] = 1000,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the AIS chains.")] = 0,
+    max_frames: Annotated[int, typer.Option(
+        "--max-frames", min=0, help="Frames scored per set at most, drawn evenly; 0 = all.")
+    ] = 0,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
+    quiet: QuietOption = False,
+) -> None:
+    """Average log-likelihood per frame: log Z by AIS (exact for <= 20 binary hiddens)."""
+    import json
+
+    from .likelihood import score
+
+    result = score(model, cache, n_chains=runs, n_temperatures=temperatures, seed=seed,
+                   max_windows=max_frames, progress=not quiet and not as_json)
+    typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
+
+
 @app.command("show")
 def show_command(
     audio: Annotated[Path, typer.Argument(help="Audio file to draw.")],

@@ -17,7 +17,7 @@ import time
 import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -27,11 +27,11 @@ from ._errors import ConfigError, ModelFileError, ParameterError
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
-from .frontend import BandStats, context_rows
+from .frontend import context_rows
 from .model import RBM, read_model_file
 
 __all__ = ["TrainResult", "history_path", "checkpoint_path", "model_from_config", "train",
-           "load_pipeline", "FeaturePipeline"]
+           "load_pipeline", "FeaturePipeline", "split_seed", "window_sets"]
 
 #: Frames drawn once from the validation clips (and from the training clips) to monitor.
 MONITOR_FRAMES = 8192
@@ -90,12 +90,19 @@ class TrainResult:
                 f"{last.get('val_recon_error', float('nan')):.4f} validation")
 
 
+class Standardiser(Protocol):
+    """Anything that standardises frames as training did: BandStats, FeaturePipeline."""
+
+    def standardise(self, frames: np.ndarray) -> np.ndarray: ...
+
+
 class _Batches:
     """Shuffled minibatches of standardised context windows from a set of clips."""
 
-    def __init__(self, cache: FrameCache, clips: np.ndarray, stats: BandStats, *, context: int,
+    def __init__(self, cache: FrameCache, clips: np.ndarray, stats: Standardiser, *, context: int,
                  batch_size: int, chunk_frames: int, max_frames: int) -> None:
         self.cache = cache
+        self.clips = np.asarray(clips)
         self.stats = stats
         self.context = context
         self.batch_size = batch_size
@@ -164,6 +171,46 @@ def _split_clips(n_clips: int, fraction: float, seed: int) -> tuple[np.ndarray, 
     return np.sort(order[n_val:]), np.sort(order[:n_val])
 
 
+def split_seed(rbm: RBM) -> int:
+    """The seed the trainer splits clips and orders batches with: the model's, or 0."""
+    seed = getattr(rbm, "seed", None)
+    return int(seed) if seed is not None else 0
+
+
+def window_sets(cache: FrameCache, config: Config, stats: Standardiser, *, seed: int,
+                batch_size: int) -> tuple[_Batches, _Batches]:
+    """The trainer's training and validation windows of a cache.
+
+    Clips are split as :func:`train` splits them (whole clips held out, the same seed),
+    and each set yields the standardised context windows training sees.
+
+    Parameters
+    ----------
+    cache : FrameCache
+    config : Config
+        Its ``frontend.context`` and ``[training]`` table are used.
+    stats : BandStats-like
+        Anything with ``standardise(frames)``: the cache's band statistics when training.
+    seed : int
+        See :func:`split_seed`.
+    batch_size : int
+        Rows per minibatch of :meth:`_Batches.epoch`.
+
+    Returns
+    -------
+    train, validation : _Batches
+        ``clips`` holds each set's clip indices; ``rows(clip, start, stop)`` and
+        ``segments`` give the windows in clip order.
+    """
+    train_clips, val_clips = _split_clips(len(cache), config.training.validation_fraction, seed)
+    if len(train_clips) == 0:
+        raise ParameterError(f"{cache.path}: the cache holds no clip to train on")
+    make = dict(context=config.frontend.context, batch_size=batch_size,
+                chunk_frames=config.training.chunk_frames, max_frames=config.training.max_frames)
+    return (_Batches(cache, train_clips, stats, **make),
+            _Batches(cache, val_clips, stats, **{**make, "max_frames": 0}))
+
+
 def _check_config_against_cache(config: Config, cache: FrameCache) -> None:
     ours, theirs = config.frontend, cache.config.frontend
     if ours.frame_key() != theirs.frame_key():
@@ -226,15 +273,10 @@ def train(
     stats = cache.band_stats
     layout = (fe.n_positions, fe.n_mels)
     rbm = model_from_config(config, layout=layout)
-    seed = rbm.seed if getattr(rbm, "seed", None) is not None else 0
-
-    train_clips, val_clips = _split_clips(len(cache), config.training.validation_fraction, seed)
-    if len(train_clips) == 0:
-        raise ParameterError(f"{cache.path}: the cache holds no clip to train on")
-    make = dict(context=fe.context, batch_size=rbm.batch_size,
-                chunk_frames=config.training.chunk_frames, max_frames=config.training.max_frames)
-    train_batches = _Batches(cache, train_clips, stats, **make)
-    val_batches = _Batches(cache, val_clips, stats, **{**make, "max_frames": 0})
+    seed = split_seed(rbm)
+    train_batches, val_batches = window_sets(cache, config, stats, seed=seed,
+                                             batch_size=rbm.batch_size)
+    train_clips, val_clips = train_batches.clips, val_batches.clips
     monitor_rng = np.random.default_rng([seed, 0x3017])
     train_probe = train_batches.sample(MONITOR_FRAMES, monitor_rng)
     val_probe = val_batches.sample(MONITOR_FRAMES, monitor_rng)
