@@ -13,7 +13,7 @@ import sys
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-BENCHES = ["bench_frontend", "bench_training", "bench_export"]
+BENCHES = ["bench_frontend", "bench_training", "bench_export", "bench_probe"]
 
 
 def _load(name: str):
