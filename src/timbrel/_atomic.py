@@ -5,7 +5,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
@@ -45,14 +45,19 @@ def atomic_open(path: str | Path, mode: str = "w", **kwargs: object) -> Iterator
         yield fh
 
 
-def remove_stale_temporaries(folder: str | Path) -> int:
-    """Delete temporary files a crashed run left in ``folder``; return how many."""
+def remove_stale_temporaries(folder: str | Path, *, names: Iterable[str] | None = None) -> int:
+    """Delete temporary files a crashed run left in ``folder``; return how many.
+
+    With ``names``, only the temporaries of those output names are deleted (for folders
+    the user shares with other files, such as a model file's folder).
+    """
     removed = 0
     folder = Path(folder)
     if not folder.is_dir():
         return 0
+    prefixes = tuple(f".{name}." for name in names) if names is not None else (".",)
     for entry in folder.iterdir():
-        if entry.name.startswith(".") and entry.name.endswith(TEMP_SUFFIX):
+        if entry.name.startswith(prefixes) and entry.name.endswith(TEMP_SUFFIX):
             with contextlib.suppress(OSError):
                 entry.unlink()
                 removed += 1

@@ -1851,7 +1851,9 @@ class RBM:
         folder = path.parent if str(path.parent) else Path(".")
         if not folder.is_dir():
             raise ParameterError(f"cannot save model to {path}: folder {folder} does not exist")
-        handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial",
+        # ".NAME.*.part", the temporary name every timbrel output uses, so the trainer
+        # finds and removes one a killed run left behind
+        handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part",
                                              dir=folder)
         try:
             with os.fdopen(handle, "wb") as stream:

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path
+from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
 from ._errors import ConfigError, ModelFileError, ParameterError
 from ._progress import progress_bar
 from .cache import FrameCache
@@ -217,6 +217,9 @@ def train(
     if out.is_dir():
         raise ParameterError(f"{out}: the model path is a folder; give a file name")
     out.parent.mkdir(parents=True, exist_ok=True)
+    # a run killed while writing left its temporaries; only our own names are touched
+    remove_stale_temporaries(out.parent, names=[out.name, history_path(out).name,
+                                                checkpoint_path(out).name])
     cache = FrameCache.open(cache_path)
     if config is None:
         config = cache.config
