@@ -55,6 +55,8 @@ FAILURES = "_failures.csv"
 CLIPS_DIR = "_clips"
 LOCK = ".lock"
 METADATA_KEY = b"timbrel"
+#: Part-file metadata: the clips of the part that failed, with the reason (JSON object).
+FAILED_KEY = b"timbrel.failed"
 #: Target uncompressed size of one row group: large enough for fast scans, small enough
 #: that a reader can work on one group at a time.
 ROW_GROUP_BYTES = 32 * 1024 * 1024
@@ -194,6 +196,9 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                                       "duration_s": stats["duration_s"],
                                       **{p: stats[p] for p in pools},
                                       **{c: job["extra"].get(c, "") for c in extra_columns}})
+            # the part lists every clip it tried; these ones are not in it and are tried
+            # again (and reported again) by a re-run
+            writer.add_key_value_metadata({FAILED_KEY: json.dumps(dict(failures)).encode()})
         finally:
             writer.close()
         if pools:
@@ -314,15 +319,16 @@ def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
     foreign: list[Path] = []
     for part in sorted(out.glob("part-*.parquet")):
         try:
-            meta = pq.read_schema(part).metadata or {}
+            meta = pq.read_metadata(part).metadata or {}
             info = json.loads(meta[METADATA_KEY])
+            failed = json.loads(meta.get(FAILED_KEY, b"{}"))
         except (OSError, KeyError, ValueError, pa.ArrowException):
             foreign.append(part)
             continue
         if info.get("model_checksum") != checksum:
             foreign.append(part)
         else:
-            done.update(info.get("sources", []))
+            done.update(src for src in info.get("sources", []) if src not in failed)
     return done, foreign
 
 
