@@ -9,7 +9,24 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
+from ._errors import OutputError
+
 TEMP_SUFFIX = ".part"
+
+
+def os_reason(exc: OSError) -> str:
+    """The system's reason for an OSError, as one phrase (``"No space left on device"``)."""
+    return exc.strerror or str(exc) or type(exc).__name__
+
+
+def make_folder(path: str | Path) -> Path:
+    """Create an output folder and its parents; a failure is an :class:`OutputError`."""
+    path = Path(path)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(path, os_reason(exc)) from None
+    return path
 
 
 @contextlib.contextmanager
@@ -17,10 +34,15 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` when the block succeeds.
 
     The temporary file is removed if the block raises. Data are flushed to disk before
-    the rename so the rename publishes a complete file.
+    the rename so the rename publishes a complete file. An ``OSError`` while creating,
+    writing, flushing or renaming (disk full, I/O error) becomes an :class:`OutputError`
+    naming ``path``.
     """
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    except OSError as exc:
+        raise OutputError(path, os_reason(exc)) from None
     os.close(fd)
     tmp_path = Path(tmp)
     # mkstemp makes files private (0600); published outputs get the usual mode instead
@@ -32,9 +54,11 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp_path, path)
-    except BaseException:
+    except BaseException as exc:
         with contextlib.suppress(OSError):
             tmp_path.unlink()
+        if isinstance(exc, OSError):
+            raise OutputError(path, os_reason(exc)) from None
         raise
 
 

@@ -35,8 +35,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
-from ._errors import AudioReadError, ExportError, ParameterError
+from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
+from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
@@ -184,7 +184,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
-                                         rows_per_group, layout, pools, extra_columns)
+                                         rows_per_group, layout, pools, extra_columns, part)
                 except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
@@ -210,7 +210,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
                  rows_per_group: int, layout: str, pools: Sequence[str],
-                 extra_columns: Sequence[str]) -> dict[str, Any]:
+                 extra_columns: Sequence[str], part: Path) -> dict[str, Any]:
     fe_cfg = frontend.config
     if cache is not None:
         clip = job["clip"]
@@ -236,8 +236,11 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         if not pending:
             return
         feats = np.concatenate(pending) if len(pending) > 1 else pending[0]
-        writer.write_table(_frame_table(job, feats, start, fe_cfg, schema, layout,
-                                        extra_columns), row_group_size=rows_per_group)
+        table = _frame_table(job, feats, start, fe_cfg, schema, layout, extra_columns)
+        try:
+            writer.write_table(table, row_group_size=rows_per_group)
+        except OSError as exc:  # the output's fault, never the clip's: it stops the run
+            raise OutputError(part, os_reason(exc)) from None
         start += len(feats)
         pending, n_pending = [], 0
 
@@ -301,7 +304,10 @@ def _exclusive(out: Path) -> Iterator[None]:
     """Hold the dataset's lock; a second export into the same folder is refused."""
     import fcntl
 
-    fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+    try:
+        fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+    except OSError as exc:
+        raise OutputError(out / LOCK, os_reason(exc)) from None
     try:
         try:
             fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -405,12 +411,12 @@ def export(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
-    out.mkdir(parents=True, exist_ok=True)
+    make_folder(out)
     with _exclusive(out):
         if overwrite:
             _clear(out)
         if pools:
-            (out / CLIPS_DIR).mkdir(exist_ok=True)
+            make_folder(out / CLIPS_DIR)
         remove_stale_temporaries(out)
         remove_stale_temporaries(out / CLIPS_DIR)
         _drop_orphan_clip_parts(out)
@@ -513,8 +519,13 @@ def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, 
     ctx = multiprocessing.get_context("spawn")
     with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
         futures = [ex.submit(_export_task, task) for task in tasks]
-        for future in concurrent.futures.as_completed(futures):
-            yield future.result()
+        try:
+            for future in concurrent.futures.as_completed(futures):
+                yield future.result()
+        except BaseException:
+            # a task failed (disk full, ...): do not start the ones still queued
+            ex.shutdown(wait=True, cancel_futures=True)
+            raise
 
 
 def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, Any]]:

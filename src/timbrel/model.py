@@ -49,7 +49,8 @@ from typing import Any
 
 import numpy as np
 
-from timbrel._errors import DivergenceError, ModelFileError, NotFittedError, ParameterError
+from timbrel._errors import (DivergenceError, ModelFileError, NotFittedError, OutputError,
+                             ParameterError)
 
 __all__ = [
     "FORMAT_NAME",
@@ -1853,8 +1854,11 @@ class RBM:
             raise ParameterError(f"cannot save model to {path}: folder {folder} does not exist")
         # ".NAME.*.part", the temporary name every timbrel output uses, so the trainer
         # finds and removes one a killed run left behind
-        handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part",
-                                             dir=folder)
+        try:
+            handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part",
+                                                 dir=folder)
+        except OSError as exc:
+            raise OutputError(path, exc.strerror or str(exc)) from None
         try:
             with os.fdopen(handle, "wb") as stream:
                 np.savez(stream, allow_pickle=False, **contents)
@@ -1862,9 +1866,11 @@ class RBM:
                 os.fsync(stream.fileno())
             os.chmod(temp_name, 0o644)
             os.replace(temp_name, path)
-        except BaseException:
+        except BaseException as exc:
             if os.path.exists(temp_name):
                 os.unlink(temp_name)
+            if isinstance(exc, OSError):  # disk full, I/O error: name the file, no traceback
+                raise OutputError(path, exc.strerror or str(exc)) from None
             raise
         return path
 

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
+from ._atomic import atomic_open, atomic_path, make_folder, remove_stale_temporaries
 from ._errors import ConfigError, ModelFileError, ParameterError
 from ._progress import progress_bar
 from .cache import FrameCache
@@ -216,7 +216,7 @@ def train(
     out = Path(out)
     if out.is_dir():
         raise ParameterError(f"{out}: the model path is a folder; give a file name")
-    out.parent.mkdir(parents=True, exist_ok=True)
+    make_folder(out.parent)
     # a run killed while writing left its temporaries; only our own names are touched
     remove_stale_temporaries(out.parent, names=[out.name, history_path(out).name,
                                                 checkpoint_path(out).name])
