@@ -18,7 +18,6 @@ including clips finished by a run that crashed.
 
 from __future__ import annotations
 
-import concurrent.futures
 import contextlib
 import csv
 import dataclasses
@@ -38,7 +37,7 @@ from . import __version__
 from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
 from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import single_blas_thread
+from ._threads import run_tasks, single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
@@ -338,22 +337,7 @@ def build_cache(
 
 
 def _run_tasks(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    if workers == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield _process_task(task)
-        return
-    import multiprocessing
-
-    ctx = multiprocessing.get_context("spawn")
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
-        futures = [ex.submit(_process_task, task) for task in tasks]
-        try:
-            for future in concurrent.futures.as_completed(futures):
-                yield future.result()
-        except BaseException:
-            # a task failed (disk full, ...): do not start the ones still queued
-            ex.shutdown(wait=True, cancel_futures=True)
-            raise
+    return run_tasks(_process_task, tasks, workers)
 
 
 def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:

@@ -17,7 +17,6 @@ and started again ends with every frame exactly once.
 
 from __future__ import annotations
 
-import concurrent.futures
 import contextlib
 import csv
 import dataclasses
@@ -38,7 +37,7 @@ from . import __version__
 from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
 from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import single_blas_thread
+from ._threads import run_tasks, single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -510,22 +509,7 @@ def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
 
 
 def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    if workers == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield _export_task(task)
-        return
-    import multiprocessing
-
-    ctx = multiprocessing.get_context("spawn")
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
-        futures = [ex.submit(_export_task, task) for task in tasks]
-        try:
-            for future in concurrent.futures.as_completed(futures):
-                yield future.result()
-        except BaseException:
-            # a task failed (disk full, ...): do not start the ones still queued
-            ex.shutdown(wait=True, cancel_futures=True)
-            raise
+    return run_tasks(_export_task, tasks, workers)
 
 
 def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, Any]]:
