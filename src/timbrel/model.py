@@ -49,8 +49,13 @@ from typing import Any
 
 import numpy as np
 
-from timbrel._errors import (DivergenceError, ModelFileError, NotFittedError, OutputError,
-                             ParameterError)
+from timbrel._errors import (
+    DivergenceError,
+    ModelFileError,
+    NotFittedError,
+    OutputError,
+    ParameterError,
+)
 
 __all__ = [
     "FORMAT_NAME",
@@ -1943,8 +1948,9 @@ def read_model_file(path: str | os.PathLike[str]) -> ModelFile:
         raise
     except zipfile.BadZipFile as exc:
         raise _refuse(path, f"damaged ({exc})") from None
-    except (OSError, EOFError, ValueError, KeyError) as exc:
-        raise _refuse(path, f"unreadable ({exc})") from None
+    except Exception as exc:  # numpy's .npy header parser (ast) and zip
+        # reader raise SyntaxError, TypeError, MemoryError, ... on a damaged file
+        raise _refuse(path, f"unreadable ({type(exc).__name__}: {exc})") from None
 
 
 def _load_member(path: Path, archive: Any, name: str) -> np.ndarray:
@@ -1956,8 +1962,9 @@ def _load_member(path: Path, archive: Any, name: str) -> np.ndarray:
         raise _refuse(path, f"array {name!r} is unreadable ({exc})") from None
     except zipfile.BadZipFile as exc:
         raise _refuse(path, f"array {name!r} is damaged ({exc})") from None
-    except (OSError, EOFError) as exc:
-        raise _refuse(path, f"array {name!r} is truncated or damaged ({exc})") from None
+    except Exception as exc:  # a damaged .npy header fails in many ways
+        raise _refuse(path, f"array {name!r} is truncated or damaged "
+                            f"({type(exc).__name__}: {exc})") from None
 
 
 def _read_archive(path: Path, archive: Any) -> ModelFile:
