@@ -23,12 +23,12 @@ import numpy as np
 
 from . import __version__
 from ._atomic import atomic_open, atomic_path, make_folder, remove_stale_temporaries
-from ._errors import ConfigError, ModelFileError, ParameterError
+from ._errors import ConfigError, ModelFileError, ParameterError, TimbrelError
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
 from .frontend import BandStats, context_rows
-from .model import RBM, read_model_file
+from .model import RBM, _content_digest, read_model_file
 
 __all__ = ["TrainResult", "history_path", "checkpoint_path", "model_from_config", "train",
            "load_pipeline", "FeaturePipeline"]
@@ -358,6 +358,8 @@ def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int,
     header = {"format": CHECKPOINT_FORMAT, "epoch": epoch, "config": config.to_dict(),
               "state": plain, "history": history}
     arrays["header"] = np.frombuffer(json.dumps(header, default=_json_default).encode(), np.uint8)
+    # SHA-256 over every member, as in model files: a damaged checkpoint must not resume
+    arrays["checksum"] = np.frombuffer(_checkpoint_digest(arrays).encode(), np.uint8)
     with atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
@@ -371,25 +373,44 @@ def _json_default(obj: Any) -> Any:
     raise TypeError(f"cannot store {type(obj).__name__} in a checkpoint")
 
 
+def _checkpoint_digest(arrays: dict[str, np.ndarray]) -> str:
+    return _content_digest(sorted((k, v) for k, v in arrays.items() if k != "checksum"), {})
+
+
 def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> tuple[int, list[dict[str, Any]]]:
+    start_over = "start over without --resume"
     try:
         with np.load(path, allow_pickle=False) as data:
-            header = json.loads(bytes(data["header"]).decode())
-            arrays = {k.split("/", 1)[1]: data[k] for k in data.files if k.startswith("state/")}
-    except (OSError, ValueError, KeyError) as exc:
-        raise ModelFileError(f"{path}: unreadable checkpoint ({exc})") from None
-    if header.get("format") != CHECKPOINT_FORMAT:
-        raise ModelFileError(f"{path}: not a timbrel checkpoint")
-    saved = Config.from_dict(header["config"]).to_dict()
+            members = {k: data[k] for k in data.files}
+    except Exception as exc:  # any parser error of this file means damage
+        raise ModelFileError(f"{path}: unreadable checkpoint ({type(exc).__name__}: {exc}); "
+                             f"{start_over}") from None
+    stated = members.get("checksum")
+    if stated is None or stated.dtype != np.uint8 or \
+            stated.tobytes() != _checkpoint_digest(members).encode():
+        raise ModelFileError(f"{path}: checkpoint damaged (checksum missing or wrong); "
+                             f"{start_over}")
+    try:
+        header = json.loads(members["header"].tobytes().decode())
+        arrays = {k.split("/", 1)[1]: v for k, v in members.items() if k.startswith("state/")}
+        if header.get("format") != CHECKPOINT_FORMAT:
+            raise ModelFileError(f"{path}: not a timbrel checkpoint")
+        saved = Config.from_dict(header["config"]).to_dict()
+    except (KeyError, ValueError, AttributeError) as exc:
+        raise ModelFileError(f"{path}: unusable checkpoint ({exc}); {start_over}") from None
     wanted = config.to_dict()
     # the number of epochs is the one setting a resume may change (to train longer)
     saved["model"].pop("epochs", None)
     wanted["model"].pop("epochs", None)
     if saved != wanted:
         raise ConfigError(f"{path}: the checkpoint was made with another configuration; "
-                          "resume with the same settings or start over without --resume")
-    rbm.set_state({**header["state"], **arrays})
-    return int(header["epoch"]), list(header["history"])
+                          f"resume with the same settings or {start_over}")
+    try:
+        rbm.set_state({**header["state"], **arrays})
+        return int(header["epoch"]), list(header["history"])
+    except (TimbrelError, KeyError, ValueError, TypeError) as exc:
+        raise ModelFileError(f"{path}: unusable checkpoint state ({exc}); {start_over}"
+                             ) from None
 
 
 class FeaturePipeline:
