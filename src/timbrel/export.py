@@ -20,10 +20,10 @@ from __future__ import annotations
 import contextlib
 import csv
 import dataclasses
+import fnmatch
 import hashlib
 import json
 import os
-import shutil
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -34,7 +34,14 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
+from ._atomic import (
+    TEMP_SUFFIX,
+    atomic_open,
+    atomic_path,
+    make_folder,
+    os_reason,
+    remove_stale_temporaries,
+)
 from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import run_tasks, single_blas_thread
@@ -410,8 +417,11 @@ def export(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
+    if out.is_dir():
+        _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
     make_folder(out)
     with _exclusive(out):
+        _check_only_ours(out)
         if overwrite:
             _clear(out)
         if pools:
@@ -559,11 +569,35 @@ def _write_failures(out: Path, failures: dict[str, str]) -> None:
             writer.writerow([display_name(src), reason])
 
 
+def _ours(name: str) -> bool:
+    """Whether a dataset folder entry is one timbrel writes."""
+    return (name in (RECORD, FAILURES, CLIPS_DIR, LOCK)
+            or fnmatch.fnmatch(name, "part-*.parquet")
+            or (name.startswith(".") and name.endswith(TEMP_SUFFIX)))
+
+
+def _check_only_ours(out: Path) -> None:
+    """Refuse a folder holding files timbrel did not write: Parquet readers would take them
+    for part of the dataset, and --overwrite must never delete them."""
+    # names starting with "." or "_" are skipped by dataset readers and left alone
+    foreign = sorted(e.name for e in out.iterdir()
+                     if not _ours(e.name) and not e.name.startswith((".", "_")))
+    if foreign:
+        shown = ", ".join(foreign[:3]) + (", ..." if len(foreign) > 3 else "")
+        raise ExportError(f"{out}: holds files that are not part of a timbrel dataset "
+                          f"({shown}); choose an empty or new folder")
+
+
 def _clear(out: Path) -> None:
+    """Delete the dataset in ``out``: only the entries timbrel writes."""
     for entry in out.iterdir():
-        if entry.name == LOCK:
+        if entry.name == LOCK or not _ours(entry.name):
             continue
-        if entry.is_dir():
-            shutil.rmtree(entry)
-        else:
+        if entry.name == CLIPS_DIR and entry.is_dir():
+            for part in entry.glob("part-*.parquet"):
+                part.unlink()
+            remove_stale_temporaries(entry)
+            with contextlib.suppress(OSError):
+                entry.rmdir()  # kept if something else is in it
+        elif entry.is_file():
             entry.unlink()
