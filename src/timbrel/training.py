@@ -23,7 +23,7 @@ import numpy as np
 
 from . import __version__
 from ._atomic import atomic_open, atomic_path, make_folder, remove_stale_temporaries
-from ._errors import ConfigError, ModelFileError, ParameterError, TimbrelError
+from ._errors import CacheError, ConfigError, ModelFileError, ParameterError, TimbrelError
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
@@ -227,6 +227,15 @@ def train(
     fe = dataclasses.replace(cache.config.frontend, context=config.frontend.context)
     config = dataclasses.replace(config, frontend=fe)
     stats = cache.band_stats
+    constant = np.flatnonzero(stats.std <= stats.std_floor)
+    if len(constant) == fe.n_mels:
+        raise CacheError(f"{cache.path}: every mel band is constant over all {cache.n_frames} "
+                         f"frames (spread <= {stats.std_floor:g}), so there is nothing to learn; "
+                         "is the audio silence or one steady sound?")
+    if len(constant):
+        say(f"{len(constant)} of {fe.n_mels} mel bands are constant over the whole cache "
+            f"(bands {_ranges(constant)}); they are centred but not scaled, and carry no "
+            "information")
     layout = (fe.n_positions, fe.n_mels)
     rbm = model_from_config(config, layout=layout)
     seed = rbm.seed if getattr(rbm, "seed", None) is not None else 0
@@ -277,6 +286,12 @@ def train(
             for w in caught:
                 say(f"epoch {epoch + 1}: {w.message}")
             figures.update(_monitor(rbm, train_probe, val_probe))
+            bounds = _variance_bounds(rbm)
+            if bounds and bounds != _variance_bounds_of(history):
+                say(f"epoch {epoch + 1}: sigma held at the floor {rbm.sigma_floor:g} for "
+                    f"{bounds['sigma_at_floor']} and at the ceiling {rbm.sigma_ceiling:g} for "
+                    f"{bounds['sigma_at_ceiling']} of {rbm.n_features_in_} visible units")
+            figures.update(bounds)
             figures["epoch"] = epoch + 1
             figures["seconds"] = round(time.perf_counter() - t0, 3)
             history.append(_jsonable(figures))
@@ -302,6 +317,36 @@ def train(
     return TrainResult(model_path=out, history_path=history_path(out), history=history,
                        n_train_clips=len(train_clips), n_validation_clips=len(val_clips),
                        wall_seconds=time.perf_counter() - t0)
+
+
+def _ranges(indices: np.ndarray) -> str:
+    """``[0, 1, 2, 5]`` as ``"0-2, 5"``."""
+    parts: list[str] = []
+    start = prev = int(indices[0])
+    for i in [*map(int, indices[1:]), None]:
+        if i is not None and i == prev + 1:
+            prev = i
+            continue
+        parts.append(f"{start}-{prev}" if prev > start else f"{start}")
+        if i is not None:
+            start = prev = i
+    return ", ".join(parts)
+
+
+def _variance_bounds(rbm: RBM) -> dict[str, int]:
+    """How many visible σ the floor and ceiling hold (Gaussian visibles with learned σ)."""
+    if rbm.visible != "gaussian" or not rbm.learn_variance:
+        return {}
+    sigma = np.asarray(rbm.sigma_, np.float64)
+    # σ = exp(z / 2) with z clipped to [2 log floor, 2 log ceiling]; allow float32 rounding
+    return {"sigma_at_floor": int(np.sum(sigma <= rbm.sigma_floor * (1 + 1e-5))),
+            "sigma_at_ceiling": int(np.sum(sigma >= rbm.sigma_ceiling * (1 - 1e-5)))}
+
+
+def _variance_bounds_of(history: list[dict[str, Any]]) -> dict[str, int]:
+    last = history[-1] if history else {}
+    return {k: last[k] for k in ("sigma_at_floor", "sigma_at_ceiling") if k in last} or \
+        {"sigma_at_floor": 0, "sigma_at_ceiling": 0}
 
 
 def _epoch_line(f: dict[str, Any]) -> str:
