@@ -9,6 +9,7 @@ frames new audio exactly as the training audio was framed.
 
 from __future__ import annotations
 
+import csv
 import dataclasses
 import inspect
 import json
@@ -389,10 +390,12 @@ def _write_history(path: Path, history: list[dict[str, Any]]) -> None:
     keys: list[str] = []
     for row in history:
         keys.extend(k for k in row if k not in keys)
-    with atomic_open(path, "w", encoding="utf-8") as fh:
-        fh.write(",".join(keys) + "\n")
+    with atomic_open(path, "w", encoding="utf-8", newline="") as fh:
+        # csv quotes the fields that hold commas (roll-back reasons) so columns stay aligned
+        writer = csv.writer(fh)
+        writer.writerow(keys)
         for row in history:
-            fh.write(",".join("" if row.get(k) is None else str(row.get(k)) for k in keys) + "\n")
+            writer.writerow(["" if row.get(k) is None else str(row.get(k)) for k in keys])
 
 
 def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int,
