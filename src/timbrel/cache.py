@@ -65,6 +65,8 @@ INDEX_SCHEMA = pa.schema([
 
 #: Files per worker task: each task writes one shard.
 FILES_PER_TASK = 16
+#: Frames of one clip folded into the band statistics at a time: bounds memory.
+STATS_FRAMES = 16384
 
 
 @dataclasses.dataclass(frozen=True)
@@ -309,7 +311,10 @@ def build_cache(
     index = pa.table({**columns, **extra}, schema=_index_schema(extra_columns))
     cache_view = FrameCache(out, index=index, n_mels=fe.n_mels)
     for clip in range(len(ordered)):
-        stats.update(cache_view.clip_frames(clip))
+        frames = cache_view.clip_frames(clip)
+        # in pieces: a whole long clip in float64, with temporaries, is ~400 MB per 3 hours
+        for start in range(0, len(frames), STATS_FRAMES):
+            stats.update(frames[start:start + STATS_FRAMES])
 
     index_name = f"index-{uuid.uuid4().hex[:16]}.parquet"
     with atomic_path(out / index_name) as tmp:
