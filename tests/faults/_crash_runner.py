@@ -1,6 +1,9 @@
 """Run the timbrel command line in this process with one fault injected from outside.
 
-Usage: python _crash_runner.py [--as-user UID] FAULT [timbrel arguments...]
+Usage: python _crash_runner.py [--as-user UID] [--peak-to FILE] FAULT [timbrel arguments...]
+
+``--peak-to FILE`` writes this process's peak resident memory in bytes (VmHWM from
+/proc/self/status, which execve resets, unlike ru_maxrss) to FILE when the command ends.
 
 ``--as-user UID`` drops root's privileges (setgid/setuid) once timbrel and everything it
 loads are imported, so the run is refused what an ordinary user is refused. (The
@@ -117,12 +120,21 @@ def main() -> int:
     if argv[0] == "--as-user":
         _drop_privileges(int(argv[1]))
         argv = argv[2:]
+    peak_to = None
+    if argv[0] == "--peak-to":
+        peak_to, argv = argv[1], argv[2:]
     fault, *args = argv
     if fault != "none":
         _install(fault)
     from timbrel.cli import main as timbrel_main
 
-    return timbrel_main(args)
+    code = timbrel_main(args)
+    if peak_to:
+        with open("/proc/self/status") as fh:
+            kib = next(int(line.split()[1]) for line in fh if line.startswith("VmHWM:"))
+        with open(peak_to, "w") as fh:
+            fh.write(str(kib * 1024))
+    return code
 
 
 if __name__ == "__main__":
