@@ -10,7 +10,8 @@ from __future__ import annotations
 __version__ = "0.1.0"
 
 from ._errors import (AudioReadError, CacheError, ConfigError, DivergenceError, ExportError,
-                      ModelFileError, NotFittedError, ParameterError, TimbrelError)
+                      ModelFileError, NotFittedError, OutputError, ParameterError,
+                      TimbrelError)
 from .config import Config, FrontEndConfig, TrainingConfig, load_config
 from .frontend import BandStats, FrontEnd, mel_filter_bank, stack_context
 
@@ -26,6 +27,7 @@ __all__ = [
     "FrontEndConfig",
     "ModelFileError",
     "NotFittedError",
+    "OutputError",
     "ParameterError",
     "TimbrelError",
     "TrainingConfig",

@@ -5,11 +5,28 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
+from ._errors import OutputError
+
 TEMP_SUFFIX = ".part"
+
+
+def os_reason(exc: OSError) -> str:
+    """The system's reason for an OSError, as one phrase (``"No space left on device"``)."""
+    return exc.strerror or str(exc) or type(exc).__name__
+
+
+def make_folder(path: str | Path) -> Path:
+    """Create an output folder and its parents; a failure is an :class:`OutputError`."""
+    path = Path(path)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(path, os_reason(exc)) from None
+    return path
 
 
 @contextlib.contextmanager
@@ -17,10 +34,15 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` when the block succeeds.
 
     The temporary file is removed if the block raises. Data are flushed to disk before
-    the rename so the rename publishes a complete file.
+    the rename so the rename publishes a complete file. An ``OSError`` while creating,
+    writing, flushing or renaming (disk full, I/O error) becomes an :class:`OutputError`
+    naming ``path``.
     """
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    except OSError as exc:
+        raise OutputError(path, os_reason(exc)) from None
     os.close(fd)
     tmp_path = Path(tmp)
     # mkstemp makes files private (0600); published outputs get the usual mode instead
@@ -32,9 +54,11 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp_path, path)
-    except BaseException:
+    except BaseException as exc:
         with contextlib.suppress(OSError):
             tmp_path.unlink()
+        if isinstance(exc, OSError):
+            raise OutputError(path, os_reason(exc)) from None
         raise
 
 
@@ -45,14 +69,19 @@ def atomic_open(path: str | Path, mode: str = "w", **kwargs: object) -> Iterator
         yield fh
 
 
-def remove_stale_temporaries(folder: str | Path) -> int:
-    """Delete temporary files a crashed run left in ``folder``; return how many."""
+def remove_stale_temporaries(folder: str | Path, *, names: Iterable[str] | None = None) -> int:
+    """Delete temporary files a crashed run left in ``folder``; return how many.
+
+    With ``names``, only the temporaries of those output names are deleted (for folders
+    the user shares with other files, such as a model file's folder).
+    """
     removed = 0
     folder = Path(folder)
     if not folder.is_dir():
         return 0
+    prefixes = tuple(f".{name}." for name in names) if names is not None else (".",)
     for entry in folder.iterdir():
-        if entry.name.startswith(".") and entry.name.endswith(TEMP_SUFFIX):
+        if entry.name.startswith(prefixes) and entry.name.endswith(TEMP_SUFFIX):
             with contextlib.suppress(OSError):
                 entry.unlink()
                 removed += 1

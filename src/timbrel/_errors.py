@@ -16,6 +16,7 @@ __all__ = [
     "ExportError",
     "ModelFileError",
     "NotFittedError",
+    "OutputError",
     "ParameterError",
     "TimbrelError",
 ]
@@ -64,6 +65,30 @@ class NotFittedError(TimbrelError, AttributeError):
 
 class DivergenceError(TimbrelError, ArithmeticError):
     """Training diverged repeatedly even after rolling back and lowering the learning rates."""
+
+
+class OutputError(TimbrelError):
+    """An output file or folder could not be written (disk full, I/O error, no permission).
+
+    Raised instead of the bare ``OSError`` so that a write error is never mistaken for a
+    bad input file, and the run stops with one line naming the path.
+
+    Parameters
+    ----------
+    path : str
+        The output that could not be written.
+    reason : str
+        The system's reason, e.g. ``"No space left on device"``.
+    """
+
+    def __init__(self, path: object, reason: str) -> None:
+        self.path = str(path)
+        self.reason = reason
+        super().__init__(f"{self.path}: cannot write ({reason})")
+
+    def __reduce__(self) -> tuple:
+        # rebuilt from (path, reason) when it crosses from a worker process
+        return (type(self), (self.path, self.reason))
 
 
 class ExportError(TimbrelError):

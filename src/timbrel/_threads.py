@@ -1,9 +1,10 @@
-"""One BLAS thread inside worker tasks, so results never depend on where a task ran."""
+"""Worker processes: a local pool of tasks, one BLAS thread inside each task."""
 
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
+from typing import Any
 
 
 @contextlib.contextmanager
@@ -21,3 +22,29 @@ def single_blas_thread() -> Iterator[None]:
         return
     with threadpool_limits(1):
         yield
+
+
+def run_tasks(function: Callable[[dict[str, Any]], dict[str, Any]],
+              tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
+    """Run ``function`` on each task, in this process (``workers == 1`` or one task) or in
+    a "spawn" process pool; yield results as tasks finish.
+
+    If a task raises, the tasks still queued are cancelled and the error propagates.
+    """
+    if workers == 1 or len(tasks) <= 1:
+        for task in tasks:
+            yield function(task)
+        return
+    import concurrent.futures
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
+        futures = [ex.submit(function, task) for task in tasks]
+        try:
+            for future in concurrent.futures.as_completed(futures):
+                yield future.result()
+        except BaseException:
+            # a task failed (disk full, ...): do not start the ones still queued
+            ex.shutdown(wait=True, cancel_futures=True)
+            raise

@@ -14,8 +14,10 @@ import csv
 import dataclasses
 import math
 import os
+import struct
 from collections.abc import Iterator, Mapping
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
 import soundfile as sf
@@ -197,6 +199,7 @@ def read_info(path: str | Path) -> AudioInfo:
         # open the file ourselves: libsndfile cannot open names that are not UTF-8
         with open(path, "rb") as raw:
             info = sf.info(raw)
+            shortfall = _riff_shortfall(raw) if info.format == "WAV" else None
     except OSError as exc:
         raise AudioReadError(display_name(str(path)), f"cannot read ({exc.strerror})") from None
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
@@ -205,8 +208,38 @@ def read_info(path: str | Path) -> AudioInfo:
         raise AudioReadError(display_name(str(path)), f"invalid sample rate {info.samplerate}")
     if info.frames <= 0:
         raise AudioReadError(display_name(str(path)), "holds no samples")
+    if shortfall is not None:
+        declared, present = shortfall
+        raise AudioReadError(display_name(str(path)), f"cut short: its header declares {declared} "
+                             f"bytes of samples but the file holds {present}")
     return AudioInfo(sample_rate=int(info.samplerate), channels=int(info.channels),
                      frames=int(info.frames))
+
+
+def _riff_shortfall(raw: BinaryIO) -> tuple[int, int] | None:
+    """``(declared, present)`` bytes of a RIFF/WAVE file's ``data`` chunk if it is cut short.
+
+    libsndfile quietly reads what is there, so a copy cut short would pass for a whole
+    clip. Chunks are walked as the RIFF/WAVE specification lays them out (id, 32-bit
+    little-endian size, data padded to an even length). A size of 0 or 0xFFFFFFFF means
+    "length unknown" (a recorder stopped before finalising the header) and is accepted.
+    """
+    size = raw.seek(0, os.SEEK_END)
+    raw.seek(0)
+    head = raw.read(12)
+    if len(head) < 12 or head[:4] != b"RIFF" or head[8:] != b"WAVE":
+        return None
+    pos = 12
+    while pos + 8 <= size:
+        raw.seek(pos)
+        chunk_id, chunk_size = struct.unpack("<4sI", raw.read(8))
+        if chunk_id == b"data":
+            present = size - pos - 8
+            if chunk_size in (0, 0xFFFFFFFF) or chunk_size <= present:
+                return None
+            return chunk_size, present
+        pos += 8 + chunk_size + (chunk_size & 1)
+    return None
 
 
 def _check_readable(path: Path) -> None:

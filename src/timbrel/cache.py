@@ -18,7 +18,6 @@ including clips finished by a run that crashed.
 
 from __future__ import annotations
 
-import concurrent.futures
 import contextlib
 import csv
 import dataclasses
@@ -26,7 +25,7 @@ import json
 import os
 import time
 import uuid
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -35,10 +34,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
-from ._errors import AudioReadError, CacheError, ParameterError
+from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
+from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import single_blas_thread
+from ._threads import run_tasks, single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
@@ -66,6 +65,8 @@ INDEX_SCHEMA = pa.schema([
 
 #: Files per worker task: each task writes one shard.
 FILES_PER_TASK = 16
+#: Frames of one clip folded into the band statistics at a time: bounds memory.
+STATS_FRAMES = 16384
 
 
 @dataclasses.dataclass(frozen=True)
@@ -128,11 +129,19 @@ def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
     failures: list[tuple[str, str]] = []
     frames_path = shard_dir / f"{shard_id}.f32"
     with atomic_path(frames_path) as tmp, open(tmp, "wb") as fh:
+
+        def write(data: bytes) -> None:
+            # a write error is the output's fault, never the input file's: it stops the run
+            try:
+                fh.write(data)
+            except OSError as exc:
+                raise OutputError(frames_path, os_reason(exc)) from None
+
         offset = 0
         for job in task["files"]:
             start = fh.tell()
             try:
-                entry = _frame_one(job, frontend, fh)
+                entry = _frame_one(job, frontend, write)
             except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                 fh.seek(start)
                 fh.truncate(start)
@@ -150,7 +159,8 @@ def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
     return {"shard": shard_id, "entries": entries, "failures": failures}
 
 
-def _frame_one(job: dict[str, Any], frontend: FrontEnd, fh: Any) -> dict[str, Any]:
+def _frame_one(job: dict[str, Any], frontend: FrontEnd, write: Callable[[bytes], None]
+               ) -> dict[str, Any]:
     path = Path(job["path"])
     c = frontend.config
     info = read_info(path)
@@ -165,7 +175,7 @@ def _frame_one(job: dict[str, Any], frontend: FrontEnd, fh: Any) -> dict[str, An
             yield block
 
     for frames in frontend.stream(counted(), c.sample_rate):
-        fh.write(np.ascontiguousarray(frames, np.float32).tobytes())
+        write(np.ascontiguousarray(frames, np.float32).tobytes())
         n_frames += len(frames)
     if n_frames == 0:
         raise AudioReadError(display_name(str(path)),
@@ -245,7 +255,7 @@ def build_cache(
         raise ParameterError(f"{out}: output exists and is not a folder")
     items, extra_columns = discover(source, allow_outside=allow_outside)
     shard_dir = out / "shards"
-    shard_dir.mkdir(parents=True, exist_ok=True)
+    make_folder(shard_dir)
     remove_stale_temporaries(out)
     remove_stale_temporaries(shard_dir)
 
@@ -301,7 +311,10 @@ def build_cache(
     index = pa.table({**columns, **extra}, schema=_index_schema(extra_columns))
     cache_view = FrameCache(out, index=index, n_mels=fe.n_mels)
     for clip in range(len(ordered)):
-        stats.update(cache_view.clip_frames(clip))
+        frames = cache_view.clip_frames(clip)
+        # in pieces: a whole long clip in float64, with temporaries, is ~400 MB per 3 hours
+        for start in range(0, len(frames), STATS_FRAMES):
+            stats.update(frames[start:start + STATS_FRAMES])
 
     index_name = f"index-{uuid.uuid4().hex[:16]}.parquet"
     with atomic_path(out / index_name) as tmp:
@@ -329,17 +342,7 @@ def build_cache(
 
 
 def _run_tasks(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    if workers == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield _process_task(task)
-        return
-    import multiprocessing
-
-    ctx = multiprocessing.get_context("spawn")
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
-        futures = [ex.submit(_process_task, task) for task in tasks]
-        for future in concurrent.futures.as_completed(futures):
-            yield future.result()
+    return run_tasks(_process_task, tasks, workers)
 
 
 def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:

@@ -17,14 +17,13 @@ and started again ends with every frame exactly once.
 
 from __future__ import annotations
 
-import concurrent.futures
 import contextlib
 import csv
 import dataclasses
+import fnmatch
 import hashlib
 import json
 import os
-import shutil
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -35,10 +34,17 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
-from ._errors import AudioReadError, ExportError, ParameterError
+from ._atomic import (
+    TEMP_SUFFIX,
+    atomic_open,
+    atomic_path,
+    make_folder,
+    os_reason,
+    remove_stale_temporaries,
+)
+from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import single_blas_thread
+from ._threads import run_tasks, single_blas_thread
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -55,6 +61,8 @@ FAILURES = "_failures.csv"
 CLIPS_DIR = "_clips"
 LOCK = ".lock"
 METADATA_KEY = b"timbrel"
+#: Part-file metadata: the clips of the part that failed, with the reason (JSON object).
+FAILED_KEY = b"timbrel.failed"
 #: Target uncompressed size of one row group: large enough for fast scans, small enough
 #: that a reader can work on one group at a time.
 ROW_GROUP_BYTES = 32 * 1024 * 1024
@@ -182,7 +190,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
-                                         rows_per_group, layout, pools, extra_columns)
+                                         rows_per_group, layout, pools, extra_columns, part)
                 except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
@@ -194,6 +202,9 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                                       "duration_s": stats["duration_s"],
                                       **{p: stats[p] for p in pools},
                                       **{c: job["extra"].get(c, "") for c in extra_columns}})
+            # the part lists every clip it tried; these ones are not in it and are tried
+            # again (and reported again) by a re-run
+            writer.add_key_value_metadata({FAILED_KEY: json.dumps(dict(failures)).encode()})
         finally:
             writer.close()
         if pools:
@@ -205,7 +216,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
                  rows_per_group: int, layout: str, pools: Sequence[str],
-                 extra_columns: Sequence[str]) -> dict[str, Any]:
+                 extra_columns: Sequence[str], part: Path) -> dict[str, Any]:
     fe_cfg = frontend.config
     if cache is not None:
         clip = job["clip"]
@@ -231,8 +242,11 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         if not pending:
             return
         feats = np.concatenate(pending) if len(pending) > 1 else pending[0]
-        writer.write_table(_frame_table(job, feats, start, fe_cfg, schema, layout,
-                                        extra_columns), row_group_size=rows_per_group)
+        table = _frame_table(job, feats, start, fe_cfg, schema, layout, extra_columns)
+        try:
+            writer.write_table(table, row_group_size=rows_per_group)
+        except OSError as exc:  # the output's fault, never the clip's: it stops the run
+            raise OutputError(part, os_reason(exc)) from None
         start += len(feats)
         pending, n_pending = [], 0
 
@@ -296,7 +310,10 @@ def _exclusive(out: Path) -> Iterator[None]:
     """Hold the dataset's lock; a second export into the same folder is refused."""
     import fcntl
 
-    fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+    try:
+        fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+    except OSError as exc:
+        raise OutputError(out / LOCK, os_reason(exc)) from None
     try:
         try:
             fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -314,15 +331,16 @@ def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
     foreign: list[Path] = []
     for part in sorted(out.glob("part-*.parquet")):
         try:
-            meta = pq.read_schema(part).metadata or {}
+            meta = pq.read_metadata(part).metadata or {}
             info = json.loads(meta[METADATA_KEY])
+            failed = json.loads(meta.get(FAILED_KEY, b"{}"))
         except (OSError, KeyError, ValueError, pa.ArrowException):
             foreign.append(part)
             continue
         if info.get("model_checksum") != checksum:
             foreign.append(part)
         else:
-            done.update(info.get("sources", []))
+            done.update(src for src in info.get("sources", []) if src not in failed)
     return done, foreign
 
 
@@ -399,12 +417,15 @@ def export(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
-    out.mkdir(parents=True, exist_ok=True)
+    if out.is_dir():
+        _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
+    make_folder(out)
     with _exclusive(out):
+        _check_only_ours(out)
         if overwrite:
             _clear(out)
         if pools:
-            (out / CLIPS_DIR).mkdir(exist_ok=True)
+            make_folder(out / CLIPS_DIR)
         remove_stale_temporaries(out)
         remove_stale_temporaries(out / CLIPS_DIR)
         _drop_orphan_clip_parts(out)
@@ -498,17 +519,7 @@ def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
 
 
 def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    if workers == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield _export_task(task)
-        return
-    import multiprocessing
-
-    ctx = multiprocessing.get_context("spawn")
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
-        futures = [ex.submit(_export_task, task) for task in tasks]
-        for future in concurrent.futures.as_completed(futures):
-            yield future.result()
+    return run_tasks(_export_task, tasks, workers)
 
 
 def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, Any]]:
@@ -558,11 +569,35 @@ def _write_failures(out: Path, failures: dict[str, str]) -> None:
             writer.writerow([display_name(src), reason])
 
 
+def _ours(name: str) -> bool:
+    """Whether a dataset folder entry is one timbrel writes."""
+    return (name in (RECORD, FAILURES, CLIPS_DIR, LOCK)
+            or fnmatch.fnmatch(name, "part-*.parquet")
+            or (name.startswith(".") and name.endswith(TEMP_SUFFIX)))
+
+
+def _check_only_ours(out: Path) -> None:
+    """Refuse a folder holding files timbrel did not write: Parquet readers would take them
+    for part of the dataset, and --overwrite must never delete them."""
+    # names starting with "." or "_" are skipped by dataset readers and left alone
+    foreign = sorted(e.name for e in out.iterdir()
+                     if not _ours(e.name) and not e.name.startswith((".", "_")))
+    if foreign:
+        shown = ", ".join(foreign[:3]) + (", ..." if len(foreign) > 3 else "")
+        raise ExportError(f"{out}: holds files that are not part of a timbrel dataset "
+                          f"({shown}); choose an empty or new folder")
+
+
 def _clear(out: Path) -> None:
+    """Delete the dataset in ``out``: only the entries timbrel writes."""
     for entry in out.iterdir():
-        if entry.name == LOCK:
+        if entry.name == LOCK or not _ours(entry.name):
             continue
-        if entry.is_dir():
-            shutil.rmtree(entry)
-        else:
+        if entry.name == CLIPS_DIR and entry.is_dir():
+            for part in entry.glob("part-*.parquet"):
+                part.unlink()
+            remove_stale_temporaries(entry)
+            with contextlib.suppress(OSError):
+                entry.rmdir()  # kept if something else is in it
+        elif entry.is_file():
             entry.unlink()

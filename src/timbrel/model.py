@@ -49,7 +49,13 @@ from typing import Any
 
 import numpy as np
 
-from timbrel._errors import DivergenceError, ModelFileError, NotFittedError, ParameterError
+from timbrel._errors import (
+    DivergenceError,
+    ModelFileError,
+    NotFittedError,
+    OutputError,
+    ParameterError,
+)
 
 __all__ = [
     "FORMAT_NAME",
@@ -1883,8 +1889,13 @@ class RBM:
         folder = path.parent if str(path.parent) else Path(".")
         if not folder.is_dir():
             raise ParameterError(f"cannot save model to {path}: folder {folder} does not exist")
-        handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial",
-                                             dir=folder)
+        # ".NAME.*.part", the temporary name every timbrel output uses, so the trainer
+        # finds and removes one a killed run left behind
+        try:
+            handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part",
+                                                 dir=folder)
+        except OSError as exc:
+            raise OutputError(path, exc.strerror or str(exc)) from None
         try:
             with os.fdopen(handle, "wb") as stream:
                 np.savez(stream, allow_pickle=False, **contents)
@@ -1892,9 +1903,11 @@ class RBM:
                 os.fsync(stream.fileno())
             os.chmod(temp_name, 0o644)
             os.replace(temp_name, path)
-        except BaseException:
+        except BaseException as exc:
             if os.path.exists(temp_name):
                 os.unlink(temp_name)
+            if isinstance(exc, OSError):  # disk full, I/O error: name the file, no traceback
+                raise OutputError(path, exc.strerror or str(exc)) from None
             raise
         return path
 
@@ -1967,8 +1980,9 @@ def read_model_file(path: str | os.PathLike[str]) -> ModelFile:
         raise
     except zipfile.BadZipFile as exc:
         raise _refuse(path, f"damaged ({exc})") from None
-    except (OSError, EOFError, ValueError, KeyError) as exc:
-        raise _refuse(path, f"unreadable ({exc})") from None
+    except Exception as exc:  # numpy's .npy header parser (ast) and zip
+        # reader raise SyntaxError, TypeError, MemoryError, ... on a damaged file
+        raise _refuse(path, f"unreadable ({type(exc).__name__}: {exc})") from None
 
 
 def _load_member(path: Path, archive: Any, name: str) -> np.ndarray:
@@ -1980,8 +1994,9 @@ def _load_member(path: Path, archive: Any, name: str) -> np.ndarray:
         raise _refuse(path, f"array {name!r} is unreadable ({exc})") from None
     except zipfile.BadZipFile as exc:
         raise _refuse(path, f"array {name!r} is damaged ({exc})") from None
-    except (OSError, EOFError) as exc:
-        raise _refuse(path, f"array {name!r} is truncated or damaged ({exc})") from None
+    except Exception as exc:  # a damaged .npy header fails in many ways
+        raise _refuse(path, f"array {name!r} is truncated or damaged "
+                            f"({type(exc).__name__}: {exc})") from None
 
 
 def _read_archive(path: Path, archive: Any) -> ModelFile:

@@ -9,6 +9,7 @@ frames new audio exactly as the training audio was framed.
 
 from __future__ import annotations
 
+import csv
 import dataclasses
 import inspect
 import json
@@ -22,13 +23,13 @@ from typing import Any, Protocol
 import numpy as np
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path
-from ._errors import ConfigError, ModelFileError, ParameterError
+from ._atomic import atomic_open, atomic_path, make_folder, remove_stale_temporaries
+from ._errors import CacheError, ConfigError, ModelFileError, ParameterError, TimbrelError
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
-from .frontend import context_rows
-from .model import RBM, read_model_file
+from .frontend import BandStats, context_rows
+from .model import RBM, _content_digest, read_model_file
 
 __all__ = ["TrainResult", "history_path", "checkpoint_path", "model_from_config", "train",
            "load_pipeline", "FeaturePipeline", "split_seed", "window_sets"]
@@ -263,7 +264,10 @@ def train(
     out = Path(out)
     if out.is_dir():
         raise ParameterError(f"{out}: the model path is a folder; give a file name")
-    out.parent.mkdir(parents=True, exist_ok=True)
+    make_folder(out.parent)
+    # a run killed while writing left its temporaries; only our own names are touched
+    remove_stale_temporaries(out.parent, names=[out.name, history_path(out).name,
+                                                checkpoint_path(out).name])
     cache = FrameCache.open(cache_path)
     if config is None:
         config = cache.config
@@ -271,6 +275,15 @@ def train(
     fe = dataclasses.replace(cache.config.frontend, context=config.frontend.context)
     config = dataclasses.replace(config, frontend=fe)
     stats = cache.band_stats
+    constant = np.flatnonzero(stats.std <= stats.std_floor)
+    if len(constant) == fe.n_mels:
+        raise CacheError(f"{cache.path}: every mel band is constant over all {cache.n_frames} "
+                         f"frames (spread <= {stats.std_floor:g}), so there is nothing to learn; "
+                         "is the audio silence or one steady sound?")
+    if len(constant):
+        say(f"{len(constant)} of {fe.n_mels} mel bands are constant over the whole cache "
+            f"(bands {_ranges(constant)}); they are centred but not scaled, and carry no "
+            "information")
     layout = (fe.n_positions, fe.n_mels)
     rbm = model_from_config(config, layout=layout)
     seed = split_seed(rbm)
@@ -316,6 +329,12 @@ def train(
             for w in caught:
                 say(f"epoch {epoch + 1}: {w.message}")
             figures.update(_monitor(rbm, train_probe, val_probe))
+            bounds = _variance_bounds(rbm)
+            if bounds and bounds != _variance_bounds_of(history):
+                say(f"epoch {epoch + 1}: sigma held at the floor {rbm.sigma_floor:g} for "
+                    f"{bounds['sigma_at_floor']} and at the ceiling {rbm.sigma_ceiling:g} for "
+                    f"{bounds['sigma_at_ceiling']} of {rbm.n_features_in_} visible units")
+            figures.update(bounds)
             figures["epoch"] = epoch + 1
             figures["seconds"] = round(time.perf_counter() - t0, 3)
             history.append(_jsonable(figures))
@@ -341,6 +360,36 @@ def train(
     return TrainResult(model_path=out, history_path=history_path(out), history=history,
                        n_train_clips=len(train_clips), n_validation_clips=len(val_clips),
                        wall_seconds=time.perf_counter() - t0)
+
+
+def _ranges(indices: np.ndarray) -> str:
+    """``[0, 1, 2, 5]`` as ``"0-2, 5"``."""
+    parts: list[str] = []
+    start = prev = int(indices[0])
+    for i in [*map(int, indices[1:]), None]:
+        if i is not None and i == prev + 1:
+            prev = i
+            continue
+        parts.append(f"{start}-{prev}" if prev > start else f"{start}")
+        if i is not None:
+            start = prev = i
+    return ", ".join(parts)
+
+
+def _variance_bounds(rbm: RBM) -> dict[str, int]:
+    """How many visible σ the floor and ceiling hold (Gaussian visibles with learned σ)."""
+    if rbm.visible != "gaussian" or not rbm.learn_variance:
+        return {}
+    sigma = np.asarray(rbm.sigma_, np.float64)
+    # σ = exp(z / 2) with z clipped to [2 log floor, 2 log ceiling]; allow float32 rounding
+    return {"sigma_at_floor": int(np.sum(sigma <= rbm.sigma_floor * (1 + 1e-5))),
+            "sigma_at_ceiling": int(np.sum(sigma >= rbm.sigma_ceiling * (1 - 1e-5)))}
+
+
+def _variance_bounds_of(history: list[dict[str, Any]]) -> dict[str, int]:
+    last = history[-1] if history else {}
+    return {k: last[k] for k in ("sigma_at_floor", "sigma_at_ceiling") if k in last} or \
+        {"sigma_at_floor": 0, "sigma_at_ceiling": 0}
 
 
 def _epoch_line(f: dict[str, Any]) -> str:
@@ -384,10 +433,12 @@ def _write_history(path: Path, history: list[dict[str, Any]]) -> None:
     keys: list[str] = []
     for row in history:
         keys.extend(k for k in row if k not in keys)
-    with atomic_open(path, "w", encoding="utf-8") as fh:
-        fh.write(",".join(keys) + "\n")
+    with atomic_open(path, "w", encoding="utf-8", newline="") as fh:
+        # csv quotes the fields that hold commas (roll-back reasons) so columns stay aligned
+        writer = csv.writer(fh)
+        writer.writerow(keys)
         for row in history:
-            fh.write(",".join("" if row.get(k) is None else str(row.get(k)) for k in keys) + "\n")
+            writer.writerow(["" if row.get(k) is None else str(row.get(k)) for k in keys])
 
 
 def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int,
@@ -398,6 +449,8 @@ def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int,
     header = {"format": CHECKPOINT_FORMAT, "epoch": epoch, "config": config.to_dict(),
               "state": plain, "history": history}
     arrays["header"] = np.frombuffer(json.dumps(header, default=_json_default).encode(), np.uint8)
+    # SHA-256 over every member, as in model files: a damaged checkpoint must not resume
+    arrays["checksum"] = np.frombuffer(_checkpoint_digest(arrays).encode(), np.uint8)
     with atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
@@ -411,25 +464,44 @@ def _json_default(obj: Any) -> Any:
     raise TypeError(f"cannot store {type(obj).__name__} in a checkpoint")
 
 
+def _checkpoint_digest(arrays: dict[str, np.ndarray]) -> str:
+    return _content_digest(sorted((k, v) for k, v in arrays.items() if k != "checksum"), {})
+
+
 def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> tuple[int, list[dict[str, Any]]]:
+    start_over = "start over without --resume"
     try:
         with np.load(path, allow_pickle=False) as data:
-            header = json.loads(bytes(data["header"]).decode())
-            arrays = {k.split("/", 1)[1]: data[k] for k in data.files if k.startswith("state/")}
-    except (OSError, ValueError, KeyError) as exc:
-        raise ModelFileError(f"{path}: unreadable checkpoint ({exc})") from None
-    if header.get("format") != CHECKPOINT_FORMAT:
-        raise ModelFileError(f"{path}: not a timbrel checkpoint")
-    saved = Config.from_dict(header["config"]).to_dict()
+            members = {k: data[k] for k in data.files}
+    except Exception as exc:  # any parser error of this file means damage
+        raise ModelFileError(f"{path}: unreadable checkpoint ({type(exc).__name__}: {exc}); "
+                             f"{start_over}") from None
+    stated = members.get("checksum")
+    if stated is None or stated.dtype != np.uint8 or \
+            stated.tobytes() != _checkpoint_digest(members).encode():
+        raise ModelFileError(f"{path}: checkpoint damaged (checksum missing or wrong); "
+                             f"{start_over}")
+    try:
+        header = json.loads(members["header"].tobytes().decode())
+        arrays = {k.split("/", 1)[1]: v for k, v in members.items() if k.startswith("state/")}
+        if header.get("format") != CHECKPOINT_FORMAT:
+            raise ModelFileError(f"{path}: not a timbrel checkpoint")
+        saved = Config.from_dict(header["config"]).to_dict()
+    except (KeyError, ValueError, AttributeError) as exc:
+        raise ModelFileError(f"{path}: unusable checkpoint ({exc}); {start_over}") from None
     wanted = config.to_dict()
     # the number of epochs is the one setting a resume may change (to train longer)
     saved["model"].pop("epochs", None)
     wanted["model"].pop("epochs", None)
     if saved != wanted:
         raise ConfigError(f"{path}: the checkpoint was made with another configuration; "
-                          "resume with the same settings or start over without --resume")
-    rbm.set_state({**header["state"], **arrays})
-    return int(header["epoch"]), list(header["history"])
+                          f"resume with the same settings or {start_over}")
+    try:
+        rbm.set_state({**header["state"], **arrays})
+        return int(header["epoch"]), list(header["history"])
+    except (TimbrelError, KeyError, ValueError, TypeError) as exc:
+        raise ModelFileError(f"{path}: unusable checkpoint state ({exc}); {start_over}"
+                             ) from None
 
 
 class FeaturePipeline:
