@@ -20,6 +20,13 @@ def test_default_toml_equals_builtin_defaults():
     loaded = load_config(CONFIGS / "default.toml")
     assert loaded.frontend == FrontEndConfig()
     assert loaded.training == TrainingConfig()
+    # every [model] value shown equals the estimator's own default
+    import inspect
+
+    from timbrel.model import RBM
+
+    defaults = {k: p.default for k, p in inspect.signature(RBM).parameters.items()}
+    assert loaded.model and {k: defaults[k] for k in loaded.model} == dict(loaded.model)
 
 
 @pytest.mark.parametrize("name", ["default.toml", "events.toml"])

@@ -331,8 +331,10 @@ class RBM:
 
     Parameters
     ----------
-    n_hidden : int, default=256
-        Number of hidden units, ≥ 1.
+    n_hidden : int, default=1024
+        Number of hidden units, ≥ 1.  Many hidden units help (Nair & Hinton 2010;
+        Hinton 2010, sec. 13): on the spoken-word probe of ``bench/bench_probe.py``
+        256, 512 and 1024 relu units scored 0.969, 0.990 and 0.995 on unseen voices.
     hidden : {"relu", "binary", "stepped"}, default="relu"
         Hidden unit kind.  ``"binary"``: logistic, mean sigmoid(x).  ``"stepped"``:
         ``n_copies`` binary copies sharing weights and bias with offsets −0.5, −1.5, …;
@@ -449,7 +451,7 @@ class RBM:
     def __init__(
         self,
         *,
-        n_hidden: int = 256,
+        n_hidden: int = 1024,
         hidden: str = "relu",
         n_copies: int = 10,
         visible: str = "gaussian",
