@@ -18,7 +18,6 @@ including clips finished by a run that crashed.
 
 from __future__ import annotations
 
-import concurrent.futures
 import contextlib
 import csv
 import dataclasses
@@ -39,6 +38,7 @@ from ._atomic import atomic_open, atomic_path, remove_stale_temporaries
 from ._errors import AudioReadError, CacheError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
+from ._workers import even_chunks, task_results
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
@@ -266,16 +266,18 @@ def build_cache(
             todo.append({"path": os.fsdecode(item.path), "source": item.source, "key": key,
                          "size": size, "mtime_ns": mtime_ns})
     n_reused = len(entries)
+    workers = max(1, workers or os.cpu_count() or 1)
     tasks = [{"frontend": dataclasses.asdict(fe), "frame_key": frame_key,
               "shard_dir": str(shard_dir), "shard_id": uuid.uuid4().hex[:16],
-              "files": todo[i:i + FILES_PER_TASK]} for i in range(0, len(todo), FILES_PER_TASK)]
-    workers = max(1, workers or os.cpu_count() or 1)
+              "files": chunk} for chunk in even_chunks(todo, workers, most=FILES_PER_TASK)]
 
-    with progress_bar(progress) as bar:
+    # the pool starts before the progress bar's thread, so its workers can be forked
+    with task_results(_process_task, tasks, workers, preload=[__name__]) as results, \
+            progress_bar(progress) as bar:
         task_id = bar.add_task("frames", total=len(items), info="")
         bar.advance(task_id, n_reused + len(failures))
         done_seconds = 0.0
-        for result in _run_tasks(tasks, workers):
+        for result in results:
             for entry in result["entries"]:
                 entries[entry["source"]] = {**entry, "shard": result["shard"]}
                 done_seconds += entry["duration_s"]
@@ -326,20 +328,6 @@ def build_cache(
     return CacheSummary(path=out, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
                         n_frames=n_frames, audio_seconds=audio_seconds,
                         wall_seconds=time.perf_counter() - t0, failures=failure_list)
-
-
-def _run_tasks(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    if workers == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield _process_task(task)
-        return
-    import multiprocessing
-
-    ctx = multiprocessing.get_context("spawn")
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
-        futures = [ex.submit(_process_task, task) for task in tasks]
-        for future in concurrent.futures.as_completed(futures):
-            yield future.result()
 
 
 def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:
