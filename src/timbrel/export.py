@@ -185,6 +185,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                                          ).encode()}
     schema = frame_schema(n_hidden, extra_columns, layout=layout, metadata=metadata)
     rows_per_group = max(1024, ROW_GROUP_BYTES // (4 * n_hidden + 64))
+    group = np.empty((rows_per_group, n_hidden), np.float32)
     out = Path(task["out"])
     part = out / f"part-{task['id']}.parquet"
     cache = FrameCache.open(task["cache"]) if task.get("cache") else None
@@ -197,7 +198,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
-                                         rows_per_group, layout, pools, extra_columns)
+                                         group, layout, pools, extra_columns)
                 except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
@@ -219,8 +220,10 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
-                 rows_per_group: int, layout: str, pools: Sequence[str],
+                 group: np.ndarray, layout: str, pools: Sequence[str],
                  extra_columns: Sequence[str]) -> dict[str, Any]:
+    """Features of one clip into ``writer``, in row groups of ``len(group)`` rows filled
+    in ``group`` (n_rows, n_hidden), so memory stays flat whatever the clip's length."""
     fe_cfg = frontend.config
     if cache is not None:
         clip = job["clip"]
@@ -240,28 +243,32 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
     total_sq = np.zeros(n_hidden, np.float64) if pools else None
     peak = np.full(n_hidden, -np.inf, np.float32) if pools else None
     start = 0
-    pending: list[np.ndarray] = []
-    n_pending = 0
+    filled = 0
 
     def flush() -> None:
-        nonlocal pending, n_pending, start
-        if not pending:
-            return
-        feats = np.concatenate(pending) if len(pending) > 1 else pending[0]
-        writer.write_table(_frame_table(job, feats, start, fe_cfg, schema, layout,
-                                        extra_columns), row_group_size=rows_per_group)
-        start += len(feats)
-        pending, n_pending = [], 0
+        # one full row group (or the clip's last rows) from the reused buffer; the
+        # writer has encoded it when write_table returns, so the buffer may be refilled
+        nonlocal filled, start
+        if filled:
+            writer.write_table(_frame_table(job, group[:filled], start, fe_cfg, schema,
+                                            layout, extra_columns),
+                               row_group_size=len(group))
+            start += filled
+            filled = 0
 
     for feats in _clip_features(pipe, blocks):
         if total is not None and total_sq is not None and peak is not None:
             total += feats.sum(axis=0, dtype=np.float64)
             total_sq += np.square(feats, dtype=np.float64).sum(axis=0)
             np.maximum(peak, feats.max(axis=0), out=peak)
-        pending.append(feats)
-        n_pending += len(feats)
-        if n_pending >= rows_per_group:
-            flush()
+        used = 0
+        while used < len(feats):
+            take = min(len(group) - filled, len(feats) - used)
+            group[filled:filled + take] = feats[used:used + take]
+            filled += take
+            used += take
+            if filled == len(group):
+                flush()
     flush()
     if start == 0:
         raise AudioReadError(job["source"], f"shorter than one analysis window (n_fft "
