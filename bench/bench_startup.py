@@ -17,7 +17,7 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _timing import interleaved, median  # noqa: E402
+from _timing import interleaved, median
 
 TARGET_SECONDS = 0.4
 
