@@ -14,6 +14,9 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 BENCHES = ["bench_startup", "bench_frontend", "bench_training", "bench_export", "bench_scale"]
+# keeps the whole run under about ten minutes on 2 cores (float64 scikit-learn is
+# informative only; run bench_training.py alone for it)
+EXTRA_ARGS = {"bench_training": ["--repeats", "3", "--no-float64", "--profile"]}
 
 
 def _load(name: str):
@@ -35,7 +38,7 @@ def main() -> None:
             continue
         print(f"== {name}")
         figures = HERE / f".{name}.json"
-        _load(name).main(["--json", str(figures)])
+        _load(name).main(["--json", str(figures), *EXTRA_ARGS.get(name, [])])
         results[name] = json.loads(figures.read_text())
         figures.unlink()
     args.out.write_text(json.dumps(results, indent=1))
