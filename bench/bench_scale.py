@@ -184,14 +184,15 @@ def draw(series: dict[str, list[dict]], speed: dict, path: Path) -> bool:
         twin.set_ylim(bottom=0)
         ax.set_title(f"cost against {name.replace('_', ' ')}")
     ax = axes[3]
-    labels = ["1 worker", "2 workers", "Dask, 2", "machine ref., 2"]
+    labels = ["1 worker", "2 workers", "Dask\n2 workers", "machine\n2 processes"]
     values = [1.0, speed["two_workers_speedup"], speed["dask_speedup"] or 0.0,
               speed["machine_reference_speedup"]]
     ax.bar(labels, values, color=["C7", "C0", "C2", "C8"])
     ax.axhline(TARGET_TWO_WORKERS, color="C3", linestyle=":", label="target 1.6x")
     ax.set_ylabel("speed-up over 1 worker")
     ax.set_title("parallel export, 10 files of 60 s")
-    ax.legend(loc="lower right")
+    ax.set_ylim(0, max(2.0, *values) * 1.05)
+    ax.legend(loc="upper right")
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=80)
     plt.close(fig)

@@ -22,6 +22,8 @@ EXTRA_ARGS = {"bench_training": ["--repeats", "3", "--no-float64", "--profile"]}
 def _load(name: str):
     spec = importlib.util.spec_from_file_location(name, HERE / f"{name}.py")
     module = importlib.util.module_from_spec(spec)
+    # registered under its own name, so worker processes can unpickle its functions
+    sys.modules[name] = module
     spec.loader.exec_module(module)
     return module
 
