@@ -189,6 +189,7 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--repeats", type=int, default=3, help="whole exports; median kept")
     parser.add_argument("--rounds", type=int, default=3, help="rounds of the stage timings")
     parser.add_argument("--no-codecs", action="store_true", help="skip the codec table")
+    parser.add_argument("--codec-rounds", type=int, default=5, help="rounds of the codec table")
     parser.add_argument("--json", type=Path, default=None)
     args = parser.parse_args(argv)
 
@@ -253,7 +254,8 @@ def main(argv: list[str] | None = None) -> dict:
         stacker = ContextStacker(pipe.config.frontend.context)
         rows = np.concatenate([stacker.push(pipe.standardise(frames)), stacker.finish()])
         feats = pipe.rbm.transform(rows)
-        codecs = codec_table(feats, tmp / "c.parquet", args.rounds, pipe.config.frontend)
+        codecs = codec_table(feats, tmp / "c.parquet", args.codec_rounds,
+                             pipe.config.frontend)
         result["codecs"] = codecs
         result["zero_share"] = round(float((feats == 0).mean()), 3)
         print(f"  codecs on one file ({result['zero_share']:.0%} exact zeros; write time "

@@ -31,7 +31,7 @@ from bench_export import SETTINGS, make_audio, make_model  # noqa: E402
 
 TARGET_TWO_WORKERS = 1.6
 FILES = (1, 2, 4, 8)             # files of 30 s
-LENGTHS = (30.0, 90.0, 180.0, 360.0)  # seconds, one file (row groups hold ~80 s)
+LENGTHS = (30.0, 180.0, 360.0, 720.0)  # seconds, one file (a row group holds ~80 s)
 HIDDEN = (256, 512, 1024)        # units, 4 files of 30 s
 
 # The child reads its peak RSS from /proc (VmHWM, this process's own address space):
@@ -239,6 +239,9 @@ def main(argv: list[str] | None = None) -> dict:
         "linear_fits": fits,
         "peak_rss_spread_files": round(spread(series["files"], "peak_rss_mib"), 2),
         "peak_rss_spread_length": round(spread(series["length"], "peak_rss_mib"), 2),
+        # flat memory: the longest file needs no more than one half as long
+        "peak_rss_last_doubling_length": round(series["length"][-1]["peak_rss_mib"]
+                                               / series["length"][-2]["peak_rss_mib"], 3),
     }
     print(f"scale: 2 workers {speed['two_workers_speedup']:.2f}x one (target >= "
           f"{TARGET_TWO_WORKERS}x, {'met' if result['two_workers_met'] else 'MISSED'}); "
@@ -255,8 +258,10 @@ def main(argv: list[str] | None = None) -> dict:
         print(f"  linear fit against {name}: {fit['fixed']:.2f} s fixed + {fit['slope']:.4f} s "
               f"per {unit}, R^2 {fit['r2']}")
     print(f"  peak RSS largest/smallest: files {result['peak_rss_spread_files']}x, length "
-          f"{result['peak_rss_spread_length']}x (a process that only imports the export "
-          f"stage: {floor:.0f} MiB)")
+          f"{result['peak_rss_spread_length']}x; {LENGTHS[-1]:.0f} s over {LENGTHS[-2]:.0f} s: "
+          f"{result['peak_rss_last_doubling_length']}x (it rises until a clip fills a row "
+          f"group, then stays flat; a process that only imports the export stage: "
+          f"{floor:.0f} MiB)")
     if draw(series, speed, args.chart):
         result["chart"] = str(args.chart)
         print(f"  chart: {args.chart}")

@@ -59,15 +59,17 @@ METADATA_KEY = b"timbrel"
 #: that a reader can work on one group at a time.
 ROW_GROUP_BYTES = 32 * 1024 * 1024
 FILES_PER_TASK = 8
-#: Parquet codec settings. Writing is the costliest export stage after the model, so
-#: they were chosen on figures measured side by side (bench/bench_export.py --codecs,
-#: one 60 s clip at 1024 relu hiddens, 57% exact zeros, write time relative to no
-#: compression): zstd level 1 without dictionary 2.4x the time for 2.0x smaller files;
-#: with pyarrow's default dictionary attempt on the floats 3.0x (the dictionary
-#: overflows and falls back to plain, and reads take 3x longer); zstd level 3 3.6x
-#: for 2.07x; byte-stream split 2.6x for 2.06x; lz4 1.9x for 1.65x.  Zstd stays: at
-#: thousands of hours the 20% smaller dataset outweighs the write time saved by lz4.
-#: Dictionary encoding is kept for the string columns, where values repeat.
+#: Parquet codec settings. Writing costs about as much as the model in an export, so
+#: they were chosen on figures measured side by side (bench/bench_export.py codec table:
+#: one 60 s clip at 1024 relu hiddens, 57% exact zeros; write time relative to no
+#: compression, median over four runs on a shared 2-core machine, each run's own
+#: figure varying by about +-0.4): zstd level 1 without dictionary 2.4x the time for
+#: 2.02x smaller files; pyarrow's default, which also tries a dictionary on the float
+#: activations (it overflows and falls back to plain), 3.0x for 1.93x; zstd level 3
+#: 3.2x for 2.07x; zstd 1 with byte-stream split 2.5x for 2.06x; lz4 1.9x for 1.65x.
+#: Zstd stays: at thousands of hours the 20% smaller dataset outweighs the write time
+#: lz4 would save. Dictionary encoding is kept for the string columns, where values
+#: repeat.
 COMPRESSION = "zstd"
 COMPRESSION_LEVEL = 1
 
