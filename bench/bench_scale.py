@@ -191,6 +191,7 @@ def draw(series: dict[str, list[dict]], speed: dict, path: Path) -> bool:
     ax.axhline(TARGET_TWO_WORKERS, color="C3", linestyle=":", label="target 1.6x")
     ax.set_ylabel("speed-up over 1 worker")
     ax.set_title("parallel export, 10 files of 60 s")
+    ax.tick_params(axis="x", labelsize=8)
     ax.set_ylim(0, max(2.0, *values) * 1.05)
     ax.legend(loc="upper right")
     path.parent.mkdir(parents=True, exist_ok=True)
