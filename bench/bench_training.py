@@ -11,7 +11,11 @@ For each shape (n_visible x n_hidden, minibatch 128, float32) the script measure
   stacks into one product with twice the inner size), timed alone with numpy here.
 
 The ratios ``timbrel / sklearn`` and ``timbrel / roofline`` are the figures of merit;
-absolute numbers depend on the machine and its load.  ``--profile`` splits a timbrel
+absolute numbers depend on the machine and its load. The three are timed in alternate
+rounds and each ratio is the median over rounds of the per-round ratio, so a burst of
+load from elsewhere hits both sides of one ratio rather than one side of all of them.
+``--threads N`` limits BLAS to N threads (default: its own pool size; the kernel and
+thread count are printed).  ``--profile`` splits a timbrel
 minibatch into the products, the random draws, the parameter-update passes and the
 rest, each timed alone at the same shapes.
 
@@ -28,10 +32,14 @@ import platform
 import sys
 import time
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 
 from timbrel.model import RBM, _standard_normal
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _timing import interleaved, median, median_ratio
 
 BATCH = 128
 TARGET_SKLEARN_RATIO = 2.0
@@ -57,7 +65,8 @@ def best_time(run: Callable[[], object], repeats: int) -> float:
     return min(times)
 
 
-def time_timbrel(data: np.ndarray, n_hidden: int, repeats: int) -> float:
+def timbrel_run(data: np.ndarray, n_hidden: int) -> Callable[[], None]:
+    """One epoch of CD-1 per call (the default model: Gaussian visibles, relu hiddens)."""
     model = RBM(n_hidden=n_hidden, batch_size=BATCH, seed=0, layout=None)
     model.initialize(data.shape[1], visible_mean=data.mean(axis=0))
     batches = [data[i:i + BATCH] for i in range(0, len(data), BATCH)]
@@ -67,10 +76,10 @@ def time_timbrel(data: np.ndarray, n_hidden: int, repeats: int) -> float:
         model.fit_epoch(lambda: batches, epoch=epoch[0])
         epoch[0] += 1
 
-    return best_time(run, repeats)
+    return run
 
 
-def time_sklearn(data: np.ndarray, n_hidden: int, repeats: int) -> float:
+def sklearn_run(data: np.ndarray, n_hidden: int) -> Callable[[], None]:
     from sklearn.neural_network import BernoulliRBM
 
     # sklearn models binary data; the values only change the sigmoid inputs, not the work
@@ -80,7 +89,7 @@ def time_sklearn(data: np.ndarray, n_hidden: int, repeats: int) -> float:
         BernoulliRBM(n_components=n_hidden, batch_size=BATCH, n_iter=1,
                      random_state=0).fit(binary)
 
-    return best_time(run, repeats)
+    return run
 
 
 def product_buffers(n_visible: int, n_hidden: int) -> dict[str, np.ndarray]:
@@ -96,7 +105,7 @@ def product_buffers(n_visible: int, n_hidden: int) -> dict[str, np.ndarray]:
     }
 
 
-def time_products(n_visible: int, n_hidden: int, n_batches: int, repeats: int) -> float:
+def products_run(n_visible: int, n_hidden: int, n_batches: int) -> Callable[[], None]:
     b = product_buffers(n_visible, n_hidden)
     w = b["weights"]
 
@@ -107,7 +116,7 @@ def time_products(n_visible: int, n_hidden: int, n_batches: int, repeats: int) -
             np.matmul(b["visible_mean"], w, out=b["hidden"])
             np.matmul(b["vis_stack"].T, b["hid_stack"], out=b["grad"])
 
-    return best_time(run, repeats)
+    return run
 
 
 def profile_parts(n_visible: int, n_hidden: int, n_batches: int, repeats: int
@@ -144,7 +153,8 @@ def blas_threads() -> str:
         from threadpoolctl import threadpool_info
     except ImportError:
         return "unknown"
-    pools = [f"{p.get('internal_api')}x{p.get('num_threads')}" for p in threadpool_info()
+    pools = [f"{p.get('internal_api')} {p.get('architecture', '?')} kernel x"
+             f"{p.get('num_threads')} threads" for p in threadpool_info()
              if p.get("user_api") == "blas"]
     return ", ".join(pools) or "unknown"
 
@@ -154,50 +164,24 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", metavar="PATH", help="also write the figures as JSON")
     parser.add_argument("--shapes", default=",".join(f"{v}x{h}" for v, h in DEFAULT_SHAPES),
                         help="comma-separated n_visible x n_hidden (default: %(default)s)")
-    parser.add_argument("--repeats", type=int, default=3, help="timings per figure; best kept")
+    parser.add_argument("--repeats", type=int, default=5,
+                        help="alternate rounds per shape; median ratio kept")
+    parser.add_argument("--threads", type=int, default=None,
+                        help="limit BLAS to this many threads (default: its own pool)")
     parser.add_argument("--profile", action="store_true", help="split a minibatch's time")
     parser.add_argument("--no-float64", action="store_true",
                         help="skip scikit-learn on float64 input")
     args = parser.parse_args(argv)
     shapes = [tuple(int(n) for n in item.split("x")) for item in args.shapes.split(",")]
 
+    from threadpoolctl import threadpool_limits
+
     rows = []
-    for n_visible, n_hidden in shapes:
-        n_frames = frames_for(n_visible, n_hidden)
-        n_batches = n_frames // BATCH
-        data = np.random.default_rng(2).standard_normal((n_frames, n_visible),
-                                                        dtype=np.float32)
-        ours = time_timbrel(data, n_hidden, args.repeats)
-        sk32 = time_sklearn(data, n_hidden, args.repeats)
-        sk64 = None if args.no_float64 else time_sklearn(data.astype(np.float64), n_hidden,
-                                                         args.repeats)
-        products = time_products(n_visible, n_hidden, n_batches, args.repeats)
-        row = {
-            "n_visible": n_visible, "n_hidden": n_hidden, "batch": BATCH,
-            "frames": n_frames,
-            "timbrel_fps": n_frames / ours,
-            "sklearn_float32_fps": n_frames / sk32,
-            "sklearn_float64_fps": None if sk64 is None else n_frames / sk64,
-            "roofline_fps": n_frames / products,
-            "product_gflops": 10 * BATCH * n_visible * n_hidden * n_batches / products / 1e9,
-        }
-        row["ratio_vs_sklearn_float32"] = row["timbrel_fps"] / row["sklearn_float32_fps"]
-        row["ratio_vs_sklearn_float64"] = (None if sk64 is None
-                                           else row["timbrel_fps"] / row["sklearn_float64_fps"])
-        row["roofline_share"] = row["timbrel_fps"] / row["roofline_fps"]
-        if args.profile:
-            step = ours / n_batches
-            parts = profile_parts(n_visible, n_hidden, n_batches, args.repeats)
-            row["profile_ms_per_batch"] = {
-                "total": 1e3 * step,
-                "products": 1e3 * products / n_batches,
-                "random_draws": 1e3 * parts["draws"],
-                "update_passes": 1e3 * parts["updates"],
-                "other": 1e3 * (step - products / n_batches - parts["draws"]
-                                - parts["updates"]),
-            }
-        rows.append(row)
-        print_row(row, header=len(rows) == 1)
+    with threadpool_limits(args.threads):
+        print(f"BLAS: {blas_threads()}")
+        for n_visible, n_hidden in shapes:
+            rows.append(measure_shape(n_visible, n_hidden, args))
+            print_row(rows[-1], header=len(rows) == 1)
 
     target = next((r for r in rows if (r["n_visible"], r["n_hidden"]) == TARGET_SHAPE), None)
     verdict = {}
@@ -232,6 +216,45 @@ def main(argv: list[str] | None = None) -> int:
             json.dump(report, stream, indent=2)
         print(f"wrote {args.json}")
     return 0
+
+
+def measure_shape(n_visible: int, n_hidden: int, args: argparse.Namespace) -> dict:
+    """Frames/s of timbrel, scikit-learn and the roofline at one shape, and the ratios."""
+    n_frames = frames_for(n_visible, n_hidden)
+    n_batches = n_frames // BATCH
+    data = np.random.default_rng(2).standard_normal((n_frames, n_visible), dtype=np.float32)
+    candidates = {"timbrel": timbrel_run(data, n_hidden),
+                  "sklearn32": sklearn_run(data, n_hidden),
+                  "roofline": products_run(n_visible, n_hidden, n_batches)}
+    if not args.no_float64:
+        candidates["sklearn64"] = sklearn_run(data.astype(np.float64), n_hidden)
+    times = interleaved(candidates, args.repeats)
+    ours, sk32, products = (median(times[k]) for k in ("timbrel", "sklearn32", "roofline"))
+    sk64 = median(times["sklearn64"]) if "sklearn64" in times else None
+    row = {
+        "n_visible": n_visible, "n_hidden": n_hidden, "batch": BATCH, "frames": n_frames,
+        "rounds": args.repeats,
+        "timbrel_fps": n_frames / ours,
+        "sklearn_float32_fps": n_frames / sk32,
+        "sklearn_float64_fps": None if sk64 is None else n_frames / sk64,
+        "roofline_fps": n_frames / products,
+        "product_gflops": 10 * BATCH * n_visible * n_hidden * n_batches / products / 1e9,
+        "ratio_vs_sklearn_float32": median_ratio(times["sklearn32"], times["timbrel"]),
+        "ratio_vs_sklearn_float64": (None if sk64 is None
+                                     else median_ratio(times["sklearn64"], times["timbrel"])),
+        "roofline_share": median_ratio(times["roofline"], times["timbrel"]),
+    }
+    if args.profile:
+        step = ours / n_batches
+        parts = profile_parts(n_visible, n_hidden, n_batches, args.repeats)
+        row["profile_ms_per_batch"] = {
+            "total": 1e3 * step,
+            "products": 1e3 * products / n_batches,
+            "random_draws": 1e3 * parts["draws"],
+            "update_passes": 1e3 * parts["updates"],
+            "other": 1e3 * (step - products / n_batches - parts["draws"] - parts["updates"]),
+        }
+    return row
 
 
 def print_row(row: dict, *, header: bool) -> None:

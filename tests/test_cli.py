@@ -80,6 +80,29 @@ def test_python_dash_m_runs_the_same_command():
     assert "frames" in result.stdout
 
 
+def test_importing_the_cli_defers_the_heavy_libraries():
+    # a property, not a timing: `timbrel --help` must not pay for the numeric stack,
+    # which is imported when a command runs (bench/bench_startup.py measures the time)
+    heavy = ["numpy", "scipy", "librosa", "pyarrow", "sklearn", "matplotlib", "dask",
+             "soundfile"]
+    code = ("import sys, timbrel, timbrel.cli; "
+            f"print(','.join(m for m in {heavy!r} if m in sys.modules))")
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                            timeout=120)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == ""
+
+
+def test_lazy_public_names_resolve_to_their_modules():
+    import timbrel
+    import timbrel.frontend
+
+    assert timbrel.FrontEnd is timbrel.frontend.FrontEnd
+    assert set(timbrel.__all__) <= set(dir(timbrel))
+    with pytest.raises(AttributeError):
+        timbrel.no_such_name  # noqa: B018
+
+
 def test_fit_inspect_export_probe_chain(tmp_path):
     # the whole chain through the command line on a tiny labelled set
     rng = np.random.default_rng(8)

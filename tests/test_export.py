@@ -207,3 +207,27 @@ def test_dask_cluster_gives_the_same_dataset(tmp_path, setup):
     assert a.column("source").to_pylist() == b.column("source").to_pylist()
     np.testing.assert_array_equal(_features(a), _features(b))
     assert pq.read_schema(next((tmp_path / "dask").glob("part-*.parquet"))).metadata
+
+
+def test_long_clip_fills_whole_row_groups_in_order(tmp_path, setup, monkeypatch):
+    # a clip longer than a row group is cut into full groups and a last partial one,
+    # and its rows still equal the in-process transform, frame by frame
+    import timbrel.export as export_module
+
+    monkeypatch.setattr(export_module, "ROW_GROUP_BYTES", 1)  # the 1024-row floor
+    audio = tmp_path / "long"
+    audio.mkdir()
+    y = 0.2 * np.random.default_rng(5).standard_normal(16000 * 25)  # 2498 frames
+    sf.write(audio / "long.wav", y.astype(np.float32), 16000)
+    out = tmp_path / "ds"
+    export(audio, setup["model"], out, workers=1)
+    part = next(out.glob("part-*.parquet"))
+    metadata = pq.ParquetFile(part).metadata  # outside reader: pyarrow's Parquet footer
+    pipe = load_pipeline(setup["model"])
+    fe = FrontEnd(pipe.config.frontend)
+    expected = pipe.features(fe.frames(load(audio / "long.wav", sr=16000), 16000))
+    sizes = [metadata.row_group(i).num_rows for i in range(metadata.num_row_groups)]
+    assert sizes == [1024, 1024, len(expected) - 2048]
+    table = _sorted_table(out)
+    assert table.column("frame").to_pylist() == list(range(len(expected)))
+    np.testing.assert_allclose(_features(table), expected, atol=1e-6)

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from timbrel import BandStats, FrontEnd, ParameterError, mel_filter_bank, stack_context
-from timbrel.frontend import ContextStacker, context_rows, hz_to_mel, mel_to_hz
+from timbrel.frontend import ContextStacker, _analysis_window, context_rows, hz_to_mel, mel_to_hz
 
 
 @pytest.fixture
@@ -63,6 +63,21 @@ def test_filter_bank_is_read_only_and_cached():
     assert a is b
     with pytest.raises(ValueError):
         a[0, 0] = 1.0
+
+
+@pytest.mark.parametrize("kind", ["hann", "hamming", "blackman"])
+@pytest.mark.parametrize(("win_length", "n_fft"), [(400, 512), (401, 512), (7, 16)])
+def test_analysis_window_equals_scipy_periodic_window(kind, win_length, n_fft):
+    # scipy.signal.get_window(fftbins=True) as the reference periodic window, centred
+    # in n_fft with zeros either side (as librosa pads a short window)
+    import scipy.signal
+
+    ours = _analysis_window(kind, win_length, n_fft)
+    left = (n_fft - win_length) // 2
+    ref = scipy.signal.get_window(kind, win_length, fftbins=True).astype(np.float32)
+    np.testing.assert_allclose(ours[left:left + win_length], ref, rtol=0, atol=1e-7)
+    assert not ours[:left].any() and not ours[left + win_length:].any()
+    assert not ours.flags.writeable
 
 
 @pytest.mark.parametrize(("sr", "window", "n_mels", "mel_scale"),

@@ -3,17 +3,48 @@
 Audio -> log-mel frames -> a Gaussian-visible restricted Boltzmann machine with
 rectified hidden units, trained by contrastive divergence -> per-frame hidden
 activations in a Parquet dataset.
+
+The public names below are imported on first use (PEP 562), so ``import timbrel`` and
+the ``timbrel`` command start without loading numpy, scipy or pyarrow until a command
+needs them.
 """
 
 from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING, Any
 
 __version__ = "0.1.0"
 
 from ._errors import (AudioReadError, CacheError, ConfigError, DivergenceError, ExportError,
                       ModelFileError, NotFittedError, OutputError, ParameterError,
                       TimbrelError)
-from .config import Config, FrontEndConfig, TrainingConfig, load_config
-from .frontend import BandStats, FrontEnd, mel_filter_bank, stack_context
+
+if TYPE_CHECKING:
+    from .config import Config, FrontEndConfig, TrainingConfig, load_config
+    from .frontend import BandStats, FrontEnd, mel_filter_bank, stack_context
+
+#: public name -> the stage module that defines it, imported on first access
+_LAZY = {
+    "Config": "config", "FrontEndConfig": "config", "TrainingConfig": "config",
+    "load_config": "config",
+    "BandStats": "frontend", "FrontEnd": "frontend", "mel_filter_bank": "frontend",
+    "stack_context": "frontend",
+}
+
+
+def __getattr__(name: str) -> Any:
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'timbrel' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value  # later look-ups skip this function
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))
+
 
 __all__ = [
     "AudioReadError",

@@ -37,7 +37,8 @@ from . import __version__
 from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
 from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import run_tasks, single_blas_thread
+from ._threads import single_blas_thread
+from ._workers import even_chunks, task_results
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
@@ -276,16 +277,18 @@ def build_cache(
             todo.append({"path": os.fsdecode(item.path), "source": item.source, "key": key,
                          "size": size, "mtime_ns": mtime_ns})
     n_reused = len(entries)
+    workers = max(1, workers or os.cpu_count() or 1)
     tasks = [{"frontend": dataclasses.asdict(fe), "frame_key": frame_key,
               "shard_dir": str(shard_dir), "shard_id": uuid.uuid4().hex[:16],
-              "files": todo[i:i + FILES_PER_TASK]} for i in range(0, len(todo), FILES_PER_TASK)]
-    workers = max(1, workers or os.cpu_count() or 1)
+              "files": chunk} for chunk in even_chunks(todo, workers, most=FILES_PER_TASK)]
 
-    with progress_bar(progress) as bar:
+    # the pool starts before the progress bar's thread, so its workers can be forked
+    with task_results(_process_task, tasks, workers, preload=[__name__]) as results, \
+            progress_bar(progress) as bar:
         task_id = bar.add_task("frames", total=len(items), info="")
         bar.advance(task_id, n_reused + len(failures))
         done_seconds = 0.0
-        for result in _run_tasks(tasks, workers):
+        for result in results:
             for entry in result["entries"]:
                 entries[entry["source"]] = {**entry, "shard": result["shard"]}
                 done_seconds += entry["duration_s"]
@@ -339,10 +342,6 @@ def build_cache(
     return CacheSummary(path=out, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
                         n_frames=n_frames, audio_seconds=audio_seconds,
                         wall_seconds=time.perf_counter() - t0, failures=failure_list)
-
-
-def _run_tasks(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    return run_tasks(_process_task, tasks, workers)
 
 
 def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:

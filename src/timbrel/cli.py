@@ -43,6 +43,9 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    # click's plain help: rendering it with rich imports and draws about 0.2 s of
+    # panels before the first line appears (bench/bench_startup.py)
+    rich_markup_mode=None,
 )
 
 

@@ -44,7 +44,8 @@ from ._atomic import (
 )
 from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
-from ._threads import run_tasks, single_blas_thread
+from ._threads import single_blas_thread
+from ._workers import even_chunks, task_results
 from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -67,6 +68,19 @@ FAILED_KEY = b"timbrel.failed"
 #: that a reader can work on one group at a time.
 ROW_GROUP_BYTES = 32 * 1024 * 1024
 FILES_PER_TASK = 8
+#: Parquet codec settings. Writing costs about as much as the model in an export, so
+#: they were chosen on figures measured side by side (bench/bench_export.py codec table:
+#: one 60 s clip at 1024 relu hiddens, 57% exact zeros; write time relative to no
+#: compression, median over four runs on a shared 2-core machine, each run's own
+#: figure varying by about +-0.4): zstd level 1 without dictionary 2.4x the time for
+#: 2.02x smaller files; pyarrow's default, which also tries a dictionary on the float
+#: activations (it overflows and falls back to plain), 3.0x for 1.93x; zstd level 3
+#: 3.2x for 2.07x; zstd 1 with byte-stream split 2.5x for 2.06x; lz4 1.9x for 1.65x.
+#: Zstd stays: at thousands of hours the 20% smaller dataset outweighs the write time
+#: lz4 would save. Dictionary encoding is kept for the string columns, where values
+#: repeat.
+COMPRESSION = "zstd"
+COMPRESSION_LEVEL = 1
 
 
 def _column_names(n_hidden: int) -> list[str]:
@@ -138,8 +152,12 @@ class ExportSummary:
 _PIPELINES: dict[str, FeaturePipeline] = {}
 
 
+def _pipeline_key(model_path: str, checksum: str) -> str:
+    return f"{model_path}|{checksum}"
+
+
 def _pipeline(model_path: str, checksum: str) -> FeaturePipeline:
-    key = f"{model_path}|{checksum}"
+    key = _pipeline_key(model_path, checksum)
     if key not in _PIPELINES:
         pipe = load_pipeline(model_path)
         if pipe.checksum != checksum:
@@ -178,6 +196,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                                          ).encode()}
     schema = frame_schema(n_hidden, extra_columns, layout=layout, metadata=metadata)
     rows_per_group = max(1024, ROW_GROUP_BYTES // (4 * n_hidden + 64))
+    group = np.empty((rows_per_group, n_hidden), np.float32)
     out = Path(task["out"])
     part = out / f"part-{task['id']}.parquet"
     cache = FrameCache.open(task["cache"]) if task.get("cache") else None
@@ -185,12 +204,12 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     failures: list[tuple[str, str]] = []
     clip_rows: list[dict[str, Any]] = []
     with atomic_path(part) as tmp:
-        writer = pq.ParquetWriter(tmp, schema, compression="zstd")
+        writer = pq.ParquetWriter(tmp, schema, **_write_options(schema))
         try:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
-                                         rows_per_group, layout, pools, extra_columns, part)
+                                         group, layout, pools, extra_columns, part)
                 except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
@@ -215,8 +234,10 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
-                 rows_per_group: int, layout: str, pools: Sequence[str],
+                 group: np.ndarray, layout: str, pools: Sequence[str],
                  extra_columns: Sequence[str], part: Path) -> dict[str, Any]:
+    """Features of one clip into ``writer``, in row groups of ``len(group)`` rows filled
+    in ``group`` (n_rows, n_hidden), so memory stays flat whatever the clip's length."""
     fe_cfg = frontend.config
     if cache is not None:
         clip = job["clip"]
@@ -230,42 +251,49 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
         blocks = frontend.stream(audio, fe_cfg.sample_rate)
     n_hidden = pipe.rbm.n_hidden
-    total = np.zeros(n_hidden, np.float64)
-    total_sq = np.zeros(n_hidden, np.float64)
-    peak = np.full(n_hidden, -np.inf, np.float32)
+    # clip pooling statistics, gathered only when a clip table is asked for: these
+    # float64 passes over every activation cost about a tenth of the model's time
+    total = np.zeros(n_hidden, np.float64) if pools else None
+    total_sq = np.zeros(n_hidden, np.float64) if pools else None
+    peak = np.full(n_hidden, -np.inf, np.float32) if pools else None
     start = 0
-    pending: list[np.ndarray] = []
-    n_pending = 0
+    filled = 0
 
     def flush() -> None:
-        nonlocal pending, n_pending, start
-        if not pending:
-            return
-        feats = np.concatenate(pending) if len(pending) > 1 else pending[0]
-        table = _frame_table(job, feats, start, fe_cfg, schema, layout, extra_columns)
-        try:
-            writer.write_table(table, row_group_size=rows_per_group)
-        except OSError as exc:  # the output's fault, never the clip's: it stops the run
-            raise OutputError(part, os_reason(exc)) from None
-        start += len(feats)
-        pending, n_pending = [], 0
+        # one full row group (or the clip's last rows) from the reused buffer; the
+        # writer has encoded it when write_table returns, so the buffer may be refilled
+        nonlocal filled, start
+        if filled:
+            table = _frame_table(job, group[:filled], start, fe_cfg, schema, layout,
+                                 extra_columns)
+            try:
+                writer.write_table(table, row_group_size=len(group))
+            except OSError as exc:  # the output's fault, never the clip's: it stops the run
+                raise OutputError(part, os_reason(exc)) from None
+            start += filled
+            filled = 0
 
     for feats in _clip_features(pipe, blocks):
-        total += feats.sum(axis=0, dtype=np.float64)
-        total_sq += np.square(feats, dtype=np.float64).sum(axis=0)
-        np.maximum(peak, feats.max(axis=0), out=peak)
-        pending.append(feats)
-        n_pending += len(feats)
-        if n_pending >= rows_per_group:
-            flush()
+        if total is not None and total_sq is not None and peak is not None:
+            total += feats.sum(axis=0, dtype=np.float64)
+            total_sq += np.square(feats, dtype=np.float64).sum(axis=0)
+            np.maximum(peak, feats.max(axis=0), out=peak)
+        used = 0
+        while used < len(feats):
+            take = min(len(group) - filled, len(feats) - used)
+            group[filled:filled + take] = feats[used:used + take]
+            filled += take
+            used += take
+            if filled == len(group):
+                flush()
     flush()
     if start == 0:
         raise AudioReadError(job["source"], f"shorter than one analysis window (n_fft "
                              f"{fe_cfg.fft_length} samples at {fe_cfg.sample_rate} Hz)")
-    mean = total / start
-    std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
     stats: dict[str, Any] = {"n_frames": start, "duration_s": duration}
-    if pools:
+    if total is not None and total_sq is not None:
+        mean = total / start
+        std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
         stats.update(mean=mean.astype(np.float32), max=peak, std=std.astype(np.float32))
     return stats
 
@@ -288,6 +316,13 @@ def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, fe_cfg: Any
     return pa.Table.from_arrays(columns, schema=schema)
 
 
+def _write_options(schema: pa.Schema) -> dict[str, Any]:
+    """Codec settings for a part file of ``schema`` (see :data:`COMPRESSION`)."""
+    strings = [f.name for f in schema if pa.types.is_string(f.type)]
+    return {"compression": COMPRESSION, "compression_level": COMPRESSION_LEVEL,
+            "use_dictionary": strings}
+
+
 def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
                      metadata: dict[bytes, bytes]) -> None:
@@ -300,7 +335,8 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
         arrays.append(pa.FixedSizeListArray.from_arrays(pa.array(flat, pa.float32()), n_hidden))
     arrays.extend(pa.array([r[c] for r in rows], pa.string()) for c in extra_columns)
     with atomic_path(path) as tmp:
-        pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp, compression="zstd")
+        pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
+                       **_write_options(schema))
 
 
 # ----------------------------------------------------------------------------- driver side
@@ -452,20 +488,23 @@ def export(
         record = {**metadata, "complete": False, "extra_columns": extra_columns}
         _write_record(out, record)
         todo = [j for j in jobs if j["source"] not in done]
+        n_workers = max(1, workers or os.cpu_count() or 1)
         tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
                   "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
                   "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path}
-                 for chunk in (todo[i:i + FILES_PER_TASK]
-                               for i in range(0, len(todo), FILES_PER_TASK))]
+                 for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
+        # forked workers inherit the loaded model instead of reading it again
+        _PIPELINES[_pipeline_key(str(model), pipe.checksum)] = pipe
         failures: dict[str, str] = {}
         n_frames = 0
         seconds = 0.0
-        with progress_bar(progress) as bar:
+        # the local pool starts before the progress bar's thread, so it can be forked
+        with (_dask_results(tasks, scheduler) if scheduler
+              else task_results(_export_task, tasks, n_workers, preload=[__name__])) as results, \
+                progress_bar(progress) as bar:
             task_id = bar.add_task("export", total=len(jobs), info="")
             bar.advance(task_id, len(jobs) - len(todo))
-            runner = (_run_dask(tasks, scheduler) if scheduler
-                      else _run_local(tasks, workers or os.cpu_count() or 1))
-            for result in runner:
+            for result in results:
                 for d in result["done"]:
                     n_frames += d["n_frames"]
                     seconds += d["duration_s"]
@@ -518,11 +557,9 @@ def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
     return h.hexdigest()[:16]
 
 
-def _run_local(tasks: list[dict[str, Any]], workers: int) -> Iterator[dict[str, Any]]:
-    return run_tasks(_export_task, tasks, workers)
-
-
-def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, Any]]:
+@contextlib.contextmanager
+def _dask_results(tasks: list[dict[str, Any]], address: str
+                  ) -> Iterator[Iterator[dict[str, Any]]]:
     try:
         from distributed import Client, as_completed
     except ImportError:
@@ -534,8 +571,7 @@ def _run_dask(tasks: list[dict[str, Any]], address: str) -> Iterator[dict[str, A
     with client:
         futures = [client.submit(_export_task, task, key=f"timbrel-export-{task['id']}",
                                  pure=False) for task in tasks]
-        for future in as_completed(futures):
-            yield future.result()
+        yield (future.result() for future in as_completed(futures))
 
 
 def _drop_orphan_clip_parts(out: Path) -> None:
