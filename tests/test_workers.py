@@ -67,3 +67,23 @@ def _pid(_: int) -> int:
     import os
 
     return os.getpid()
+
+
+def _die_on_three(x: int) -> int:
+    import os
+    import signal
+    import time
+
+    if x == 3:
+        os.kill(os.getpid(), signal.SIGKILL)  # as the kernel's out-of-memory killer would
+    time.sleep(0.05)
+    return x
+
+
+def test_a_killed_worker_is_one_clear_error_not_a_traceback():
+    from timbrel import TimbrelError, WorkerError
+
+    with pytest.raises(WorkerError, match="worker process stopped abruptly.*run the same"):
+        with task_results(_die_on_three, list(range(8)), 2) as results:
+            list(results)
+    assert issubclass(WorkerError, TimbrelError)  # so the command line prints one line

@@ -18,7 +18,7 @@ __version__ = "0.1.0"
 
 from ._errors import (AudioReadError, CacheError, ConfigError, DivergenceError, ExportError,
                       ModelFileError, NotFittedError, OutputError, ParameterError,
-                      TimbrelError)
+                      TimbrelError, WorkerError)
 
 if TYPE_CHECKING:
     from .config import Config, FrontEndConfig, TrainingConfig, load_config
@@ -62,6 +62,7 @@ __all__ = [
     "ParameterError",
     "TimbrelError",
     "TrainingConfig",
+    "WorkerError",
     "__version__",
     "load_config",
     "mel_filter_bank",

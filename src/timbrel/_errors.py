@@ -93,3 +93,10 @@ class OutputError(TimbrelError):
 
 class ExportError(TimbrelError):
     """An export could not start or finish (lock held, another model's dataset, ...)."""
+
+
+class WorkerError(TimbrelError):
+    """A worker process stopped abruptly (killed, or out of memory) in the middle of a task.
+
+    What the finished tasks wrote is kept; running the same command again continues.
+    """

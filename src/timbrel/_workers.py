@@ -18,6 +18,8 @@ import threading
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any, TypeVar
 
+from ._errors import WorkerError
+
 Result = TypeVar("Result")
 
 
@@ -69,10 +71,22 @@ def task_results(function: Callable[[Any], Result], tasks: Sequence[Any], worker
                                                 mp_context=context) as pool:
         futures = [pool.submit(function, task) for task in tasks]
         try:
-            yield (future.result() for future in concurrent.futures.as_completed(futures))
+            yield _completed(futures)
         finally:
             for future in futures:
                 future.cancel()
+
+
+def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:
+    from concurrent.futures.process import BrokenProcessPool
+
+    try:
+        for future in concurrent.futures.as_completed(futures):
+            yield future.result()
+    except BrokenProcessPool:
+        raise WorkerError(
+            "a worker process stopped abruptly (killed, or out of memory?); the work it had "
+            "finished is kept: run the same command again to continue") from None
 
 
 def even_chunks(items: Sequence[Any], workers: int, *, most: int) -> list[list[Any]]:

@@ -71,10 +71,15 @@ def _check_finite_and_bounded(model) -> RBM:
     return rbm
 
 
+@pytest.mark.parametrize("limit", ["default", "off"])
 @pytest.mark.parametrize("data", ["good", "tones", "copies"])
-def test_learning_rates_x100(data, caches, tmp_path):
+def test_learning_rates_x100(data, limit, caches, tmp_path):
+    # Two safeguards: the step limit (max_step, default 0.05 of the weights' norm) and,
+    # behind it, the roll-back guard; with the limit off the guard alone must hold.
     model = tmp_path / "m.npz"
-    result = invoke("fit", caches / f"cache-{data}", "--out", model, "-q", *STRESS, *X100)
+    off = ["--set", "model.max_step=0"] if limit == "off" else []
+    result = invoke("fit", caches / f"cache-{data}", "--out", model, "-q", *STRESS, *X100,
+                    *off)
     no_traceback(result)
     assert result.exit_code == 0, result.output
     _check_finite_and_bounded(model)
@@ -85,8 +90,11 @@ def test_learning_rates_x100(data, caches, tmp_path):
     assert result.output.count("rolled back to the parameters before the epoch") == rollbacks
     scale = float(rows[-1]["learning_rate_scale"])
     assert scale == 0.5 ** rollbacks
-    if data == "tones":  # the guard had to act here (seeded run)
-        assert rollbacks > 0
+    limited = sum(int(r["limited_steps"]) for r in rows)
+    if limit == "off":
+        assert limited == 0
+    if data == "tones":  # a safeguard had to act here (seeded runs), and says so
+        assert (limited if limit == "default" else rollbacks) > 0
     for r in rows:
         assert int(r["sigma_at_floor"]) + int(r["sigma_at_ceiling"]) <= 48  # 3 x 16 visible
 
