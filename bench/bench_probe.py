@@ -34,7 +34,6 @@ def main(argv: list[str] | None = None) -> dict:
 
     sys.path.insert(0, str(ROOT / "tests"))
     from speech_corpus import espeak_unavailable_reason, make_spoken_word_set
-
     from timbrel.cache import build_cache
     from timbrel.config import load_config
     from timbrel.evaluation import probe

@@ -226,7 +226,8 @@ def test_non_utf8_file_name_is_found_and_read(tmp_path):
     assert load(items[0].path, sr=16000).size == 16000
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=150, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(st.binary(max_size=2048))
 def test_decoder_boundary_random_bytes(tmp_path, data):
     # whatever the bytes, the reader returns finite float32 audio or raises AudioReadError
@@ -239,8 +240,10 @@ def test_decoder_boundary_random_bytes(tmp_path, data):
     assert y.dtype == np.float32 and np.isfinite(y).all()
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(channels=st.integers(0, 9), sr=st.integers(0, 400000), bits=st.sampled_from([0, 8, 12, 16, 24, 32, 64]),
+@settings(max_examples=150, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(channels=st.integers(0, 9), sr=st.integers(0, 400000),
+       bits=st.sampled_from([0, 8, 12, 16, 24, 32, 64]),
        claimed=st.integers(0, 2**31), payload=st.binary(max_size=512))
 def test_decoder_boundary_generated_wav_headers(tmp_path, channels, sr, bits, claimed, payload):
     # RIFF/WAVE headers with arbitrary fields and lengths (hypothesis)

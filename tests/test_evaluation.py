@@ -36,7 +36,7 @@ def tones(tmp_path_factory):
     sr = 16000
     t = np.arange(int(0.5 * sr)) / sr
     rows = ["path,label,split"]
-    for k, (name, freq) in enumerate([("low", 300.0), ("mid", 1200.0), ("high", 4000.0)]):
+    for _k, (name, freq) in enumerate([("low", 300.0), ("mid", 1200.0), ("high", 4000.0)]):
         for i in range(6):
             f = freq * (1 + 0.05 * rng.standard_normal())
             y = 0.3 * np.sin(2 * np.pi * f * t) + 0.02 * rng.standard_normal(t.size)
@@ -89,7 +89,7 @@ def test_probe_errors_name_the_problem(tones, tmp_path):
         probe(tones / "ds", baselines=("spectral",))
     with pytest.raises(ParameterError, match="folds = 1 must be >= 2"):
         probe(tones / "ds", baselines=(), split_column=None, folds=1)
-    with pytest.raises(ParameterError, match="not a readable Parquet dataset|not a timbrel"):
+    with pytest.raises(ParameterError, match=r"not a readable Parquet dataset|not a timbrel"):
         probe(tmp_path)
 
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import itertools
+
 import librosa
 import numpy as np
 import pytest
@@ -126,7 +128,7 @@ def test_click_lands_in_the_right_frame(click_at):
     fe = FrontEnd()
     c = fe.config
     y = np.zeros(sr, np.float32)
-    sample = int(round(click_at * sr))
+    sample = round(click_at * sr)
     y[sample] = 1.0
     frames = fe.frames(y, sr)
     energy = np.exp(frames).sum(axis=1)
@@ -230,11 +232,11 @@ def test_context_stacker_and_rows_equal_whole_stacking(n, context, cuts):
     whole = stack_context(frames, context) if n else np.empty((0, 3 * (2 * context + 1)))
     bounds = sorted({0, n, *[c for c in cuts if c <= n]})
     stacker = ContextStacker(context)
-    out = [stacker.push(frames[a:b]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+    out = [stacker.push(frames[a:b]) for a, b in itertools.pairwise(bounds)]
     out.append(stacker.finish())
     got = np.concatenate([o for o in out if len(o)]) if n else np.empty_like(whole)
     np.testing.assert_array_equal(got, whole)
-    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+    for a, b in itertools.pairwise(bounds):
         np.testing.assert_array_equal(context_rows(frames, a, b, context), whole[a:b])
 
 

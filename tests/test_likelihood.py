@@ -1,4 +1,4 @@
-# ruff: noqa: RUF002, RUF003  (docstrings and messages use math notation: σ, −, β, ×)
+# ruff: noqa: RUF003  (docstrings and messages use math notation: σ, −, β, ×)
 """Tests of timbrel.likelihood: log Z by AIS and by enumeration, and the score command.
 
 Outside references, named beside each check:

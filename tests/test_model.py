@@ -430,7 +430,7 @@ def test_learns_the_standard_deviations_of_a_gaussian_mixture(tie_variance):
     data = (component - 0.5) * (6 * truth) + rng.standard_normal((4000, 6)) * truth
     model = RBM(n_hidden=2, hidden="binary", tie_variance=tie_variance, layout=layout,
                 learning_rate=0.02, variance_learning_rate=0.02, weight_decay=0.0,
-                epochs=40, batch_size=100, seed=0)
+                learning_rate_decay=0.0, epochs=40, batch_size=100, seed=0)
     model.fit(data.astype(np.float32))
     np.testing.assert_allclose(model.sigma_, truth, rtol=0.2)
     if tie_variance == "band":

@@ -1,4 +1,4 @@
-# ruff: noqa: RUF001, RUF002, RUF003  (labels and docstrings use math notation: σ, ×)
+
 """Tests of timbrel.plots: the pure helpers against numpy, librosa and scipy, the PNG files
 (readable, sized figsize × dpi, not blank), the picture's axes telling the truth about a
 chirp, and the error when matplotlib is missing."""

@@ -13,8 +13,15 @@ from timbrel import ConfigError, DivergenceError, ModelFileError
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
 from timbrel.frontend import stack_context
-from timbrel.training import (_Batches, _split_clips, checkpoint_path, describe_model,
-                              history_path, load_pipeline, train)
+from timbrel.training import (
+    _Batches,
+    _split_clips,
+    checkpoint_path,
+    describe_model,
+    history_path,
+    load_pipeline,
+    train,
+)
 
 
 @pytest.fixture(scope="module")

@@ -83,7 +83,7 @@ def _die_on_three(x: int) -> int:
 def test_a_killed_worker_is_one_clear_error_not_a_traceback():
     from timbrel import TimbrelError, WorkerError
 
-    with pytest.raises(WorkerError, match="worker process stopped abruptly.*run the same"):
+    with pytest.raises(WorkerError, match=r"worker process stopped abruptly.*run the same"):
         with task_results(_die_on_three, list(range(8)), 2) as results:
             list(results)
     assert issubclass(WorkerError, TimbrelError)  # so the command line prints one line

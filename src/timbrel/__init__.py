@@ -16,9 +16,19 @@ from typing import TYPE_CHECKING, Any
 
 __version__ = "0.1.0"
 
-from ._errors import (AudioReadError, CacheError, ConfigError, DivergenceError, ExportError,
-                      ModelFileError, NotFittedError, OutputError, ParameterError,
-                      TimbrelError, WorkerError)
+from ._errors import (
+    AudioReadError,
+    CacheError,
+    ConfigError,
+    DivergenceError,
+    ExportError,
+    ModelFileError,
+    NotFittedError,
+    OutputError,
+    ParameterError,
+    TimbrelError,
+    WorkerError,
+)
 
 if TYPE_CHECKING:
     from .config import Config, FrontEndConfig, TrainingConfig, load_config

@@ -23,7 +23,8 @@ class _Silent:
 
 @contextlib.contextmanager
 def progress_bar(enabled: bool, *, rate_field: str = "") -> Iterator[Any]:
-    """A rich ``Progress`` (bar, counts, elapsed, remaining, a free text field) or a silent stand-in.
+    """A rich ``Progress`` (bar, counts, elapsed, remaining, a free text field), or a
+    silent stand-in.
 
     Rich is imported only when the bar is shown, so library use stays light.
     """
@@ -31,8 +32,14 @@ def progress_bar(enabled: bool, *, rate_field: str = "") -> Iterator[Any]:
         yield _Silent()
         return
     from rich.console import Console
-    from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
-                               TimeElapsedColumn, TimeRemainingColumn)
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
 
     console = Console(stderr=True)
     columns = [TextColumn("[bold]{task.description}"), BarColumn(), MofNCompleteColumn(),

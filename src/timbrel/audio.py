@@ -26,12 +26,12 @@ from ._errors import AudioReadError, ParameterError
 
 __all__ = [
     "AUDIO_EXTENSIONS",
-    "AudioItem",
     "AudioInfo",
+    "AudioItem",
     "discover",
+    "load",
     "read_blocks",
     "read_info",
-    "load",
 ]
 
 #: Extensions a folder search picks up (case-insensitive); libsndfile decides what it reads.
@@ -84,7 +84,8 @@ def display_name(text: str) -> str:
     return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
 
 
-def discover(source: str | Path, *, allow_outside: bool = False) -> tuple[list[AudioItem], list[str]]:
+def discover(source: str | Path, *, allow_outside: bool = False
+             ) -> tuple[list[AudioItem], list[str]]:
     """List the clips of a folder or a manifest CSV.
 
     Parameters
@@ -308,7 +309,7 @@ def read_blocks(
     info = read_info(path)
     if channel >= info.channels:
         raise AudioReadError(name, f"has {info.channels} channel(s); channel {channel} requested")
-    blocksize = max(1, int(math.ceil(block_seconds * info.sample_rate)))
+    blocksize = max(1, math.ceil(block_seconds * info.sample_rate))
     resampler = None
     if info.sample_rate != sr:
         import soxr  # deferred: only needed when rates differ

@@ -43,7 +43,7 @@ from .audio import AudioItem, discover, display_name, read_blocks, read_info
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
 
-__all__ = ["CacheSummary", "ClipFailure", "FrameCache", "INDEX_SCHEMA", "build_cache"]
+__all__ = ["INDEX_SCHEMA", "CacheSummary", "ClipFailure", "FrameCache", "build_cache"]
 
 CACHE_FORMAT = "timbrel-frame-cache"
 CACHE_VERSION = 1

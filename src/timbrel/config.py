@@ -78,7 +78,7 @@ def _check_fields(obj: Any, section: str) -> None:
         if isinstance(value, float) and not math.isfinite(value):
             raise ConfigError(f"{key} = {value!r} must be finite")
         low, high = meta.get("low"), meta.get("high")
-        if low is not None and value < low or high is not None and value > high:
+        if (low is not None and value < low) or (high is not None and value > high):
             raise ConfigError(f"{key} = {value!r} is outside the allowed range [{low}, {high}]")
 
 

@@ -75,7 +75,7 @@ def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Se
         raise ParameterError(f"{dataset}: not a readable Parquet dataset ({exc})") from None
     schema = ds.schema
     raw_meta = (schema.metadata or {}).get(b"timbrel")
-    if raw_meta is None or "features" not in schema.names and "h0000" not in schema.names:
+    if raw_meta is None or ("features" not in schema.names and "h0000" not in schema.names):
         raise ParameterError(f"{dataset}: not a timbrel feature dataset")
     metadata = json.loads(raw_meta)
     missing = [c for c in columns if c not in schema.names]
@@ -279,7 +279,8 @@ def probe(
         counts = min(np.unique(y, return_counts=True)[1])
         k = int(min(folds, counts))
         if k < 2:
-            raise ParameterError(f"{dataset}: a class has fewer than 2 clips; cannot cross-validate")
+            raise ParameterError(f"{dataset}: a class has fewer than 2 clips; "
+                                 "cannot cross-validate")
         splits = list(StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(X, y))
         scheme = f"stratified {k}-fold over clips"
     scores = [_score(f"rbm-{meta.get('hidden', '?')}", X, y, classes, splits, seed)]
@@ -292,5 +293,5 @@ def probe(
         for kind in baselines:
             scores.append(_score(kind, _baseline_features(kind, paths, fe), y, classes, splits,
                                  seed))
-    return ProbeResult(classes=classes, scheme=scheme, n_train=int(len(splits[0][0])),
+    return ProbeResult(classes=classes, scheme=scheme, n_train=len(splits[0][0]),
                        n_test=int(sum(len(t) for _, t in splits)), scores=scores)

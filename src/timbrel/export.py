@@ -53,7 +53,7 @@ from .config import Config
 from .frontend import ContextStacker, FrontEnd
 from .training import FeaturePipeline, load_pipeline
 
-__all__ = ["ExportSummary", "LAYOUTS", "POOLS", "export", "frame_schema", "clip_schema"]
+__all__ = ["LAYOUTS", "POOLS", "ExportSummary", "clip_schema", "export", "frame_schema"]
 
 LAYOUTS = ("vector", "wide")
 POOLS = ("mean", "max", "std")
@@ -347,7 +347,7 @@ def _exclusive(out: Path) -> Iterator[None]:
     import fcntl
 
     try:
-        fh = open(out / LOCK, "a+")  # noqa: SIM115 - held for the whole export
+        fh = open(out / LOCK, "a+")
     except OSError as exc:
         raise OutputError(out / LOCK, os_reason(exc)) from None
     try:
@@ -589,7 +589,8 @@ def _read_record(out: Path) -> dict[str, Any] | None:
     try:
         return json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
-        raise ExportError(f"{path}: unreadable run record; pass --overwrite to start over") from None
+        raise ExportError(f"{path}: unreadable run record; pass --overwrite to start "
+                          "over") from None
 
 
 def _write_record(out: Path, record: dict[str, Any]) -> None:

@@ -213,7 +213,8 @@ class FrontEnd:
 
     def frame_times(self, n_frames: int) -> np.ndarray:
         """Start time in seconds of each frame, shape (n_frames,), float64."""
-        return np.arange(n_frames, dtype=np.float64) * self.config.hop_length / self.config.sample_rate
+        hop, sr = self.config.hop_length, self.config.sample_rate
+        return np.arange(n_frames, dtype=np.float64) * hop / sr
 
     def frames(self, y: np.ndarray, sr: int) -> np.ndarray:
         """Log-mel frames of a whole clip, before any standardisation.

@@ -1,4 +1,4 @@
-# ruff: noqa: RUF002, RUF003  (docstrings and messages use math notation: σ, −, β, ×)
+# ruff: noqa: RUF002  (docstrings and messages use math notation: σ, −, β, ×)
 """How likely the data is under a trained model: log Z by annealed importance sampling.
 
 The RBM's free energy F(v) gives each visible vector's density up to the partition function

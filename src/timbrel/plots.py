@@ -1,4 +1,4 @@
-# ruff: noqa: RUF001, RUF002, RUF003  (labels and docstrings use math notation: σ, −, ×)
+# ruff: noqa: RUF001  (labels and docstrings use math notation: σ, −, ×)
 """Pictures of what a model learned and of how it hears one clip.
 
 :func:`draw_model` writes three PNGs about a model file (receptive fields, σ per band,

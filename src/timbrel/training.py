@@ -28,11 +28,20 @@ from ._errors import CacheError, ConfigError, ModelFileError, ParameterError, Ti
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
-from .frontend import BandStats, context_rows
+from .frontend import context_rows
 from .model import RBM, _content_digest, read_model_file
 
-__all__ = ["TrainResult", "history_path", "checkpoint_path", "model_from_config", "train",
-           "load_pipeline", "FeaturePipeline", "split_seed", "window_sets"]
+__all__ = [
+    "FeaturePipeline",
+    "TrainResult",
+    "checkpoint_path",
+    "history_path",
+    "load_pipeline",
+    "model_from_config",
+    "split_seed",
+    "train",
+    "window_sets",
+]
 
 #: Frames drawn once from the validation clips (and from the training clips) to monitor.
 MONITOR_FRAMES = 8192
@@ -168,7 +177,7 @@ class _Batches:
 def _split_clips(n_clips: int, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
     rng = np.random.default_rng([seed, 0x5EED])
     order = rng.permutation(n_clips)
-    n_val = int(round(fraction * n_clips))
+    n_val = round(fraction * n_clips)
     if fraction > 0 and n_clips >= 2:
         n_val = max(1, min(n_val, n_clips - 1))
     else:

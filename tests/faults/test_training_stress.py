@@ -74,10 +74,12 @@ def _check_finite_and_bounded(model) -> RBM:
 @pytest.mark.parametrize("limit", ["default", "off"])
 @pytest.mark.parametrize("data", ["good", "tones", "copies"])
 def test_learning_rates_x100(data, limit, caches, tmp_path):
-    # Two safeguards: the step limit (max_step, default 0.05 of the weights' norm) and,
-    # behind it, the roll-back guard; with the limit off the guard alone must hold.
+    # Safeguards: the decaying rates and the step limit (max_step, default 0.05 of the
+    # weights' norm) and, behind them, the roll-back guard; with the first two off
+    # (constant rates, no limit) the guard alone must hold.
     model = tmp_path / "m.npz"
-    off = ["--set", "model.max_step=0"] if limit == "off" else []
+    off = (["--set", "model.max_step=0", "--set", "model.learning_rate_decay=0"]
+           if limit == "off" else [])
     result = invoke("fit", caches / f"cache-{data}", "--out", model, "-q", *STRESS, *X100,
                     *off)
     no_traceback(result)
