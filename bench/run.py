@@ -78,6 +78,14 @@ def _targets(results: dict) -> list[tuple[str, str, str, bool]]:
         rows.append(("2 workers >= 1.6x one", f"{s['two_workers_speedup']:.2f}x",
                      f"machine's own 2-process {s['machine_reference_speedup']:.2f}x",
                      r["two_workers_met"]))
+    if "bench_probe" in results and "runs" in results["bench_probe"]:
+        r = results["bench_probe"]
+        seeds = f"mean of seeds {','.join(map(str, r['seeds']))}"
+        rows.append(("relu probe >= MFCC + 5 points (unseen voices)",
+                     f"{r['relu_points_over_mfcc']:+.1f}", f"MFCC with deltas, {seeds}",
+                     r["met_over_mfcc"]))
+        rows.append(("relu probe > binary hiddens", f"{r['relu_points_over_binary']:+.1f}",
+                     f"binary hiddens, {seeds}", r["met_over_binary"]))
     return rows
 
 
