@@ -26,6 +26,11 @@ __all__ = [
 ]
 
 
+#: Slaney's mel scale: linear at 200/3 Hz per mel below 1 kHz (15 mel), then logarithmic
+#: with a step of ln(6.4)/27 per mel: (Hz per mel, break in Hz, break in mel, log step).
+_SLANEY = (200.0 / 3.0, 1000.0, 1000.0 / (200.0 / 3.0), float(np.log(6.4) / 27.0))
+
+
 def hz_to_mel(frequencies: np.ndarray | float, *, scale: str = "slaney") -> np.ndarray:
     """Convert Hz to mels.
 
@@ -46,10 +51,7 @@ def hz_to_mel(frequencies: np.ndarray | float, *, scale: str = "slaney") -> np.n
         return 2595.0 * np.log10(1.0 + f / 700.0)
     if scale != "slaney":
         raise ParameterError(f"scale = {scale!r} is not 'slaney' or 'htk'")
-    f_sp = 200.0 / 3.0
-    min_log_hz = 1000.0
-    min_log_mel = min_log_hz / f_sp
-    logstep = np.log(6.4) / 27.0
+    f_sp, min_log_hz, min_log_mel, logstep = _SLANEY
     linear = f / f_sp
     with np.errstate(divide="ignore"):
         logpart = min_log_mel + np.log(np.maximum(f, 1e-300) / min_log_hz) / logstep
@@ -63,10 +65,7 @@ def mel_to_hz(mels: np.ndarray | float, *, scale: str = "slaney") -> np.ndarray:
         return 700.0 * (10.0 ** (m / 2595.0) - 1.0)
     if scale != "slaney":
         raise ParameterError(f"scale = {scale!r} is not 'slaney' or 'htk'")
-    f_sp = 200.0 / 3.0
-    min_log_hz = 1000.0
-    min_log_mel = min_log_hz / f_sp
-    logstep = np.log(6.4) / 27.0
+    f_sp, min_log_hz, min_log_mel, logstep = _SLANEY
     return np.where(m >= min_log_mel, min_log_hz * np.exp(logstep * (m - min_log_mel)), f_sp * m)
 
 
