@@ -14,7 +14,7 @@ from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
 from timbrel.frontend import stack_context
 from timbrel.training import (
-    _Batches,
+    WindowBatches,
     _split_clips,
     checkpoint_path,
     describe_model,
@@ -64,7 +64,7 @@ def test_batches_are_standardised_context_windows_of_the_training_clips(cache_di
     cache = FrameCache.open(cache_dir)
     stats = cache.band_stats
     clips = np.array([0, 3, 5])
-    batches = _Batches(cache, clips, stats, context=2, batch_size=32, chunk_frames=100,
+    batches = WindowBatches(cache, clips, stats, context=2, batch_size=32, chunk_frames=100,
                        max_frames=0)
     rows = np.concatenate(list(batches.epoch(np.random.default_rng(0))))
     expected = np.concatenate([stack_context(stats.standardise(cache.clip_frames(c)), 2)

@@ -84,7 +84,13 @@ from ._errors import ParameterError
 from ._progress import progress_bar
 from .cache import FrameCache
 from .model import RBM
-from .training import _Batches, _check_config_against_cache, load_pipeline, split_seed, window_sets
+from .training import (
+    WindowBatches,
+    check_config_against_cache,
+    load_pipeline,
+    split_seed,
+    window_sets,
+)
 
 __all__ = ["DEFAULT_CHAINS", "DEFAULT_TEMPERATURES", "EXACT_MAX_HIDDEN", "RELU_COPY_MARGIN",
            "PartitionEstimate", "ScoreResult", "SetScore", "ais_log_partition",
@@ -630,7 +636,7 @@ class _Tally:
         return mean, math.sqrt(var / max(self.n - 1, 1))
 
 
-def _score_set(rbm: RBM, path: _Path, batches: _Batches, max_windows: int,
+def _score_set(rbm: RBM, path: _Path, batches: WindowBatches, max_windows: int,
                rng: np.random.Generator) -> _Tally:
     tally = _Tally(rbm.n_features_in_)
     if max_windows and batches.n_frames > max_windows:
@@ -695,7 +701,7 @@ def score(
         raise ParameterError(f"max_windows must be an integer ≥ 0; got {max_windows!r}")
     pipe = load_pipeline(model)
     frames = FrameCache.open(cache)
-    _check_config_against_cache(pipe.config, frames)
+    check_config_against_cache(pipe.config, frames)
     rbm = pipe.rbm
     fe = pipe.config.frontend
     recorded = pipe.metadata.get("cache", {})
@@ -710,7 +716,7 @@ def score(
         named = [("train", train_set), ("validation", val_set)]
     else:
         every = np.arange(len(frames))
-        named = [("all clips", _Batches(frames, every, pipe, context=fe.context,
+        named = [("all clips", WindowBatches(frames, every, pipe, context=fe.context,
                                         batch_size=rbm.batch_size, chunk_frames=0,
                                         max_frames=0))]
     # the base rate and copies do not enter the free energy, so a provisional path serves

@@ -333,8 +333,10 @@ class RBM:
     ----------
     n_hidden : int, default=1024
         Number of hidden units, ≥ 1.  Many hidden units help (Nair & Hinton 2010;
-        Hinton 2010, sec. 12, section number from memory): on the spoken-word probe of ``bench/bench_probe.py``
-        256, 512 and 1024 relu units scored 0.969, 0.990 and 0.995 on unseen voices.
+        Hinton 2010, sec. 12, section number from memory): on the spoken-word probe of
+        ``bench/bench_probe.py`` 256, 512 and 1024 relu units scored 0.969, 0.990 and
+        0.995 on unseen voices, one run each (runs of one setting spread over about
+        ±2 points from seed to seed).
     hidden : {"relu", "binary", "stepped"}, default="relu"
         Hidden unit kind.  ``"binary"``: logistic, mean sigmoid(x).  ``"stepped"``:
         ``n_copies`` binary copies sharing weights and bias with offsets −0.5, −1.5, …;

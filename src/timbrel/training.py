@@ -34,6 +34,8 @@ from .model import RBM, _content_digest, read_model_file
 __all__ = [
     "FeaturePipeline",
     "TrainResult",
+    "WindowBatches",
+    "check_config_against_cache",
     "checkpoint_path",
     "history_path",
     "load_pipeline",
@@ -110,7 +112,7 @@ class Standardiser(Protocol):
     def standardise(self, frames: np.ndarray) -> np.ndarray: ...
 
 
-class _Batches:
+class WindowBatches:
     """Shuffled minibatches of standardised context windows from a set of clips."""
 
     def __init__(self, cache: FrameCache, clips: np.ndarray, stats: Standardiser, *, context: int,
@@ -192,7 +194,7 @@ def split_seed(rbm: RBM) -> int:
 
 
 def window_sets(cache: FrameCache, config: Config, stats: Standardiser, *, seed: int,
-                batch_size: int) -> tuple[_Batches, _Batches]:
+                batch_size: int) -> tuple[WindowBatches, WindowBatches]:
     """The trainer's training and validation windows of a cache.
 
     Clips are split as :func:`train` splits them (whole clips held out, the same seed),
@@ -208,11 +210,11 @@ def window_sets(cache: FrameCache, config: Config, stats: Standardiser, *, seed:
     seed : int
         See :func:`split_seed`.
     batch_size : int
-        Rows per minibatch of :meth:`_Batches.epoch`.
+        Rows per minibatch of :meth:`WindowBatches.epoch`.
 
     Returns
     -------
-    train, validation : _Batches
+    train, validation : WindowBatches
         ``clips`` holds each set's clip indices; ``rows(clip, start, stop)`` and
         ``segments`` give the windows in clip order.
     """
@@ -221,11 +223,11 @@ def window_sets(cache: FrameCache, config: Config, stats: Standardiser, *, seed:
         raise ParameterError(f"{cache.path}: the cache holds no clip to train on")
     make = dict(context=config.frontend.context, batch_size=batch_size,
                 chunk_frames=config.training.chunk_frames, max_frames=config.training.max_frames)
-    return (_Batches(cache, train_clips, stats, **make),
-            _Batches(cache, val_clips, stats, **{**make, "max_frames": 0}))
+    return (WindowBatches(cache, train_clips, stats, **make),
+            WindowBatches(cache, val_clips, stats, **{**make, "max_frames": 0}))
 
 
-def _check_config_against_cache(config: Config, cache: FrameCache) -> None:
+def check_config_against_cache(config: Config, cache: FrameCache) -> None:
     ours, theirs = config.frontend, cache.config.frontend
     if ours.frame_key() != theirs.frame_key():
         diffs = [f"{f.name}: config {getattr(ours, f.name)!r}, cache {getattr(theirs, f.name)!r}"
@@ -284,7 +286,7 @@ def train(
     cache = FrameCache.open(cache_path)
     if config is None:
         config = cache.config
-    _check_config_against_cache(config, cache)
+    check_config_against_cache(config, cache)
     fe = dataclasses.replace(cache.config.frontend, context=config.frontend.context)
     config = dataclasses.replace(config, frontend=fe)
     stats = cache.band_stats
