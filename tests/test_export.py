@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 import soundfile as sf
 
-from timbrel import ExportError
+from timbrel import ExportError, ParameterError
 from timbrel.audio import load
 from timbrel.cache import build_cache
 from timbrel.config import load_config
@@ -129,6 +129,33 @@ def test_wide_layout_and_clip_table(tmp_path, setup):
     np.testing.assert_allclose(clips.column("max")[0].values.to_numpy(), feats.max(0))
     np.testing.assert_allclose(clips.column("std")[0].values.to_numpy(), feats.std(0),
                                rtol=1e-3, atol=1e-5)
+
+
+@pytest.mark.parametrize(("compression", "parquet_codec"),
+                         [("zstd", "ZSTD"), ("lz4", "LZ4"), ("none", "UNCOMPRESSED")])
+def test_every_codec_gives_the_same_rows(tmp_path, setup, compression, parquet_codec):
+    reference = tmp_path / "reference"
+    export(setup["cache"], setup["model"], reference, workers=1)
+    out = tmp_path / compression
+    export(setup["cache"], setup["model"], out, workers=1, compression=compression,
+           pool=["mean"])
+    np.testing.assert_array_equal(_features(_sorted_table(out)),
+                                  _features(_sorted_table(reference)))
+    parts = sorted(out.glob("part-*.parquet")) + sorted((out / "_clips").glob("*.parquet"))
+    for part in parts:  # the codec as Parquet's own footer names it
+        meta = pq.ParquetFile(part).metadata
+        codecs = {meta.row_group(g).column(c).compression
+                  for g in range(meta.num_row_groups) for c in range(meta.num_columns)}
+        assert codecs == {parquet_codec}
+    # the activations are never null, and the schema says so
+    item = _sorted_table(out).schema.field("features").type.value_field
+    assert item.type == "float" and not item.nullable
+
+
+def test_unknown_codec_is_refused_before_anything_is_written(tmp_path, setup):
+    with pytest.raises(ParameterError, match="compression = 'gzip'"):
+        export(setup["cache"], setup["model"], tmp_path / "ds", compression="gzip")
+    assert not (tmp_path / "ds").exists()
 
 
 def test_rerun_skips_finished_sources_and_other_models_are_refused(tmp_path, setup):

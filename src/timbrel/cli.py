@@ -122,6 +122,14 @@ class Layout(str, Enum):
     wide = "wide"
 
 
+class Compression(str, Enum):
+    """Parquet codecs of an export (see timbrel.export.CODEC_LEVELS)."""
+
+    zstd = "zstd"
+    lz4 = "lz4"
+    none = "none"
+
+
 @app.command("fit")
 def fit_command(
     cache: Annotated[Path, typer.Argument(help="Frame cache made by `timbrel frames`.")],
@@ -219,6 +227,9 @@ def export_command(
     ] = Layout.vector,
     pool: Annotated[str, typer.Option(
         "--pool", help="Also write a clip table with these poolings, e.g. mean,max,std.")] = "",
+    compression: Annotated[Compression, typer.Option(
+        "--compression", help="Parquet codec: zstd (half the size), lz4, or none (fastest).")
+    ] = Compression.zstd,
     overwrite: Annotated[bool, typer.Option(
         "--overwrite", help="Replace whatever the output folder holds.")] = False,
     config: ConfigOption = None,
@@ -234,7 +245,8 @@ def export_command(
     cfg = load_config(config) if config else None
     pools = [p.strip() for p in pool.split(",") if p.strip()]
     summary = export(source, model, out, workers=workers, scheduler=scheduler,
-                     layout=layout.value, pool=pools, overwrite=overwrite, config=cfg,
+                     layout=layout.value, pool=pools, compression=compression.value,
+                     overwrite=overwrite, config=cfg,
                      allow_outside=allow_outside, progress=not quiet)
     for src, reason in summary.failures:
         _err(f"failed: {src}: {reason}")

@@ -68,19 +68,26 @@ FAILED_KEY = b"timbrel.failed"
 #: that a reader can work on one group at a time.
 ROW_GROUP_BYTES = 32 * 1024 * 1024
 FILES_PER_TASK = 8
-#: Parquet codec settings. Writing costs about as much as the model in an export, so
-#: they were chosen on figures measured side by side (bench/bench_export.py codec table:
-#: one 60 s clip at 1024 relu hiddens, 57% exact zeros; write time relative to no
-#: compression, median over four runs on a shared 2-core machine, each run's own
-#: figure varying by about +-0.4): zstd level 1 without dictionary 2.4x the time for
-#: 2.02x smaller files; pyarrow's default, which also tries a dictionary on the float
-#: activations (it overflows and falls back to plain), 3.0x for 1.93x; zstd level 3
-#: 3.2x for 2.07x; zstd 1 with byte-stream split 2.5x for 2.06x; lz4 1.9x for 1.65x.
-#: Zstd stays: at thousands of hours the 20% smaller dataset outweighs the write time
-#: lz4 would save. Dictionary encoding is kept for the string columns, where values
-#: repeat.
+#: Parquet codecs an export may write with (``compression=``), and the level of each.
+#: Writing costs about as much as the model in an export, so the default was chosen on
+#: figures measured side by side (bench/bench_export.py codec table: one 60 s clip at
+#: 1024 relu hiddens, 57% exact zeros; write time relative to no compression, median
+#: over alternate rounds on a shared 2-core machine, each figure varying by about
+#: +-0.4): zstd level 1 without dictionary 2.3x the time for 2.02x smaller files;
+#: pyarrow's default, which also tries a dictionary on the float activations (it
+#: overflows and falls back to plain), 2.4x for 1.93x; zstd level 3 2.8x for 2.07x;
+#: lz4 1.5x for 1.65x. Zstd level 1 is the default: at thousands of hours a dataset
+#: half the size outweighs the write time; ``"none"`` is for when the disk is cheap
+#: and the export must be as fast as it can be. Dictionary encoding is kept for the
+#: string columns, where values repeat.
+CODEC_LEVELS: dict[str, int | None] = {"zstd": 1, "lz4": None, "none": None}
 COMPRESSION = "zstd"
-COMPRESSION_LEVEL = 1
+
+
+def _vector_type(n_hidden: int) -> pa.DataType:
+    # the items are never null: declaring so spares the Parquet writer a definition level
+    # per value (a third of the uncompressed write time at 1024 units)
+    return pa.list_(pa.field("item", pa.float32(), nullable=False), n_hidden)
 
 
 def _column_names(n_hidden: int) -> list[str]:
@@ -93,7 +100,8 @@ def frame_schema(n_hidden: int, extra_columns: Sequence[str] = (), *,
     """The Arrow schema of the per-frame table.
 
     Columns: ``source`` (string), ``frame`` (int32), ``start_s`` (float64), then
-    ``features`` (fixed-size list of float32, ``n_hidden`` long) for ``layout="vector"``
+    ``features`` (fixed-size list of non-null float32, ``n_hidden`` long) for
+    ``layout="vector"``
     or one float32 column per hidden unit (``h0000``, ``h0001``, ...) for ``"wide"``,
     then the manifest columns as strings.
     """
@@ -101,7 +109,7 @@ def frame_schema(n_hidden: int, extra_columns: Sequence[str] = (), *,
               pa.field("frame", pa.int32(), nullable=False),
               pa.field("start_s", pa.float64(), nullable=False)]
     if layout == "vector":
-        fields.append(pa.field("features", pa.list_(pa.float32(), n_hidden), nullable=False))
+        fields.append(pa.field("features", _vector_type(n_hidden), nullable=False))
     elif layout == "wide":
         fields.extend(pa.field(name, pa.float32(), nullable=False)
                       for name in _column_names(n_hidden))
@@ -118,7 +126,7 @@ def clip_schema(n_hidden: int, pools: Sequence[str], extra_columns: Sequence[str
     fields = [pa.field("source", pa.string(), nullable=False),
               pa.field("n_frames", pa.int64(), nullable=False),
               pa.field("duration_s", pa.float64(), nullable=False)]
-    fields.extend(pa.field(p, pa.list_(pa.float32(), n_hidden), nullable=False) for p in pools)
+    fields.extend(pa.field(p, _vector_type(n_hidden), nullable=False) for p in pools)
     fields.extend(pa.field(name, pa.string()) for name in extra_columns)
     return pa.schema(fields, metadata=metadata)
 
@@ -204,7 +212,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     failures: list[tuple[str, str]] = []
     clip_rows: list[dict[str, Any]] = []
     with atomic_path(part) as tmp:
-        writer = pq.ParquetWriter(tmp, schema, **_write_options(schema))
+        writer = pq.ParquetWriter(tmp, schema, **_write_options(schema, task["compression"]))
         try:
             for job in task["jobs"]:
                 try:
@@ -228,7 +236,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             writer.close()
         if pools:
             _write_clip_part(out / CLIPS_DIR / f"part-{task['id']}.parquet", clip_rows,
-                             n_hidden, pools, extra_columns, metadata)
+                             n_hidden, pools, extra_columns, metadata, task["compression"])
     return {"id": task["id"], "done": done, "failures": failures}
 
 
@@ -309,34 +317,36 @@ def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, fe_cfg: Any
     ]
     feats = np.ascontiguousarray(feats, np.float32)
     if layout == "vector":
-        columns.append(pa.FixedSizeListArray.from_arrays(pa.array(feats.reshape(-1)), n_hidden))
+        columns.append(pa.FixedSizeListArray.from_arrays(pa.array(feats.reshape(-1)),
+                                                         type=_vector_type(n_hidden)))
     else:
         columns.extend(pa.array(feats[:, j]) for j in range(n_hidden))
     columns.extend(pa.array([job["extra"].get(c, "")] * n, pa.string()) for c in extra_columns)
     return pa.Table.from_arrays(columns, schema=schema)
 
 
-def _write_options(schema: pa.Schema) -> dict[str, Any]:
-    """Codec settings for a part file of ``schema`` (see :data:`COMPRESSION`)."""
+def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[str, Any]:
+    """Codec settings for a part file of ``schema`` (see :data:`CODEC_LEVELS`)."""
     strings = [f.name for f in schema if pa.types.is_string(f.type)]
-    return {"compression": COMPRESSION, "compression_level": COMPRESSION_LEVEL,
+    return {"compression": compression, "compression_level": CODEC_LEVELS[compression],
             "use_dictionary": strings}
 
 
 def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
-                     metadata: dict[bytes, bytes]) -> None:
+                     metadata: dict[bytes, bytes], compression: str) -> None:
     schema = clip_schema(n_hidden, pools, extra_columns, metadata=metadata)
     arrays: list[pa.Array] = [pa.array([r["source"] for r in rows], pa.string()),
                               pa.array([r["n_frames"] for r in rows], pa.int64()),
                               pa.array([r["duration_s"] for r in rows], pa.float64())]
     for p in pools:
         flat = (np.concatenate([r[p] for r in rows]) if rows else np.zeros(0, np.float32))
-        arrays.append(pa.FixedSizeListArray.from_arrays(pa.array(flat, pa.float32()), n_hidden))
+        arrays.append(pa.FixedSizeListArray.from_arrays(pa.array(flat, pa.float32()),
+                                                        type=_vector_type(n_hidden)))
     arrays.extend(pa.array([r[c] for r in rows], pa.string()) for c in extra_columns)
     with atomic_path(path) as tmp:
         pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
-                       **_write_options(schema))
+                       **_write_options(schema, compression))
 
 
 # ----------------------------------------------------------------------------- driver side
@@ -389,6 +399,7 @@ def export(
     scheduler: str | None = None,
     layout: str = "vector",
     pool: Sequence[str] = (),
+    compression: str = COMPRESSION,
     overwrite: bool = False,
     config: Config | None = None,
     allow_outside: bool = False,
@@ -415,6 +426,10 @@ def export(
         One ``features`` list column, or one float32 column per hidden unit.
     pool : sequence of {"mean", "max", "std"}, default ()
         Also write a clip table (``out/_clips/``) with these poolings over each clip.
+    compression : {"zstd", "lz4", "none"}, default "zstd"
+        Parquet codec of the part files. Zstd (level 1) halves the size of relu
+        activations; ``"none"`` writes about twice as fast and twice as large; lz4 lies
+        between. Parts written with different codecs read the same.
     overwrite : bool, default False
         Delete what ``out`` holds and start over. Without it, a dataset of the same model
         is resumed (finished clips are skipped) and one of another model is refused.
@@ -437,6 +452,9 @@ def export(
     t0 = time.perf_counter()
     if layout not in LAYOUTS:
         raise ParameterError(f"layout = {layout!r} is not one of {', '.join(LAYOUTS)}")
+    if compression not in CODEC_LEVELS:
+        raise ParameterError(f"compression = {compression!r} is not one of "
+                             f"{', '.join(CODEC_LEVELS)}")
     pools = list(dict.fromkeys(pool))
     bad = [p for p in pools if p not in POOLS]
     if bad:
@@ -491,7 +509,8 @@ def export(
         n_workers = max(1, workers or os.cpu_count() or 1)
         tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
                   "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
-                  "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path}
+                  "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path,
+                  "compression": compression}
                  for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
         # forked workers inherit the loaded model instead of reading it again
         _PIPELINES[_pipeline_key(str(model), pipe.checksum)] = pipe
