@@ -38,6 +38,7 @@ from timbrel.model import (
     RBM,
     DivergenceWarning,
     ModelFile,
+    _uniform_fill,
     read_model_file,
 )
 
@@ -348,6 +349,24 @@ def test_visible_noise_is_standard_normal(rng):
     for column in standardised.T:
         assert scipy.stats.kstest(column, "norm").pvalue > 1e-3
     assert abs(scipy.stats.kurtosis(standardised.ravel())) < 0.05
+
+
+@pytest.mark.parametrize("shape", [(128, 1024), (3, 5), (1,), (7, 9)])
+def test_bulk_uniforms_are_numpys_own_float32_uniforms(shape):
+    # Source: numpy's Generator.random(dtype=float32), the reference: the bulk path must
+    # give the very same numbers for an even count (for an odd count it discards the
+    # last half word, so only the range and the 2^-24 grid are checked there).
+    ours, reference = np.random.default_rng(11), np.random.default_rng(11)
+    for _ in range(3):
+        got = _uniform_fill(ours, np.empty(shape, np.float32))
+        want = reference.random(shape, dtype=np.float32)
+        if got.size % 2 == 0:
+            np.testing.assert_array_equal(got, want)
+        assert got.min() >= 0.0 and got.max() < 1.0
+        assert np.array_equal(got * 2.0**24, np.round(got * 2.0**24))
+    strided = np.zeros((6, 8), np.float32)[:, ::2]  # not contiguous: filled all the same
+    _uniform_fill(np.random.default_rng(3), strided)
+    assert np.count_nonzero(strided) >= strided.size - 1
 
 
 # --------------------------------------------------------------------------------------
