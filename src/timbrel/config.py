@@ -219,7 +219,9 @@ class Config:
         model = data.get("model", {})
         if not isinstance(model, Mapping):
             raise ConfigError(f"{source}: [model] must be a table")
-        return cls(frontend=tables["frontend"], model=dict(model), training=tables["training"])
+        frontend, training = tables["frontend"], tables["training"]
+        assert isinstance(frontend, FrontEndConfig) and isinstance(training, TrainingConfig)
+        return cls(frontend=frontend, model=dict(model), training=training)
 
     def with_overrides(self, overrides: Iterable[str]) -> Config:
         """Return a copy with ``table.key=value`` strings applied (values parsed as TOML)."""

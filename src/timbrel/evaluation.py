@@ -256,21 +256,21 @@ def probe(
     import pyarrow.dataset as pads
 
     names = pads.dataset(str(dataset), format="parquet").schema.names
-    use_split = split_column is not None and split_column in names
-    columns = [label, *([split_column] if use_split else [])]
+    split_name = split_column if split_column is not None and split_column in names else None
+    columns = [label, *([split_name] if split_name is not None else [])]
     sources, X, extra, meta = read_clip_features(dataset, pools, columns=columns)
     y = np.array(extra[label])
     classes = sorted(set(y.tolist()))
     if len(classes) < 2:
         raise ParameterError(f"{dataset}: column {label!r} holds fewer than two classes")
-    if use_split:
-        split = np.array(extra[split_column])
+    if split_name is not None:
+        split = np.array(extra[split_name], dtype=object)
         train_idx, test_idx = np.flatnonzero(split == "train"), np.flatnonzero(split == "test")
         if len(train_idx) == 0 or len(test_idx) == 0:
-            raise ParameterError(f"{dataset}: column {split_column!r} needs both 'train' and "
+            raise ParameterError(f"{dataset}: column {split_name!r} needs both 'train' and "
                                  "'test' clips")
         splits = [(train_idx, test_idx)]
-        scheme = f"train/test from column {split_column!r}"
+        scheme = f"train/test from column {split_name!r}"
     else:
         from sklearn.model_selection import StratifiedKFold
 

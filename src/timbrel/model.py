@@ -475,6 +475,8 @@ class RBM:
     product.  Persistent CD adds one product for the monitored reconstruction.
     """
 
+    metadata_: dict[str, Any]  # set only by load/read_model_file, as documented above
+
     def __init__(
         self,
         *,
@@ -1189,17 +1191,17 @@ class RBM:
         """
         np.matmul(vis_stack.T, hid_stack, out=out_weights)
         grad_hidden = hid_stack.sum(axis=0)
-        neg_mean = neg_sum / n_neg if n_neg else self.visible_bias_
+        neg_mean = neg_sum / n_neg if n_neg and neg_sum is not None else self.visible_bias_
         grad_visible = pos_sum / n_pos - neg_mean
         if self.visible == "gaussian":
             grad_visible *= self._inv_var
         grad_visible *= rate
         grad_log_var = None
-        if with_variance:
+        if with_variance and pos_sq is not None:
             # Σⱼ Wᵢⱼ Gᵢⱼ = rate · (⟨e^{−zᵢ} vᵢ Σⱼ Wᵢⱼ hⱼ⟩_data − ⟨…⟩_model)
             coupling = np.einsum("ij,ij->i", self.weights_, out_weights)
             spread = pos_sq / n_pos
-            if n_neg:
+            if n_neg and neg_sq is not None:
                 spread = spread - neg_sq / n_neg
             grad_full = 0.5 * self._inv_var * spread - coupling / rate
             grad_log_var = self._group_sum(grad_full.astype(_F32))
@@ -2053,7 +2055,7 @@ def _read_archive(path: Path, archive: Any) -> ModelFile:
         raise _refuse(path, "header is not a JSON object")
     if header.get("format") != FORMAT_NAME:
         raise _refuse(path, f"format {header.get('format')!r} is not {FORMAT_NAME!r}")
-    version = header.get("format_version")
+    version: Any = header.get("format_version")
     if not _is_int(version) or version < 1:
         raise _refuse(path, f"invalid format version {version!r}")
     if version > FORMAT_VERSION:

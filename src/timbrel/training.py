@@ -16,7 +16,7 @@ import json
 import math
 import time
 import warnings
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from pathlib import Path
 from typing import Any, Protocol
 
@@ -330,7 +330,8 @@ def train(
         for epoch in range(start_epoch, n_epochs):
             epoch_rng = np.random.default_rng([seed, epoch])
 
-            def make_batches(epoch_rng_state: dict = epoch_rng.bit_generator.state) -> Iterator:
+            def make_batches(epoch_rng_state: Mapping[str, Any] = epoch_rng.bit_generator.state
+                             ) -> Iterator:
                 rng = np.random.default_rng()
                 rng.bit_generator.state = epoch_rng_state
                 bar.update(batch_task, completed=0)
@@ -468,7 +469,7 @@ def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int,
     arrays["checksum"] = np.frombuffer(_checkpoint_digest(arrays).encode(), np.uint8)
     with atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
-            np.savez(fh, **arrays)
+            np.savez(fh, **arrays)  # type: ignore[arg-type]  # numpy's stub reads ** as flags
 
 
 def _json_default(obj: Any) -> Any:
