@@ -140,7 +140,7 @@ def _uniform_fill(rng: np.random.Generator, out: np.ndarray) -> np.ndarray:
     fresh = n - kept
     halves = bits.random_raw((fresh + 1) // 2).view(np.uint32)
     if kept or fresh % 2:  # a half was consumed from, or is left to, the generator
-        state = bits.state
+        state = dict(bits.state)
         state["has_uint32"] = fresh % 2
         if fresh % 2:
             state["uinteger"] = int(halves[fresh])
