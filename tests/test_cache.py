@@ -175,3 +175,18 @@ def test_no_temporary_files_remain(tmp_path, audio_dir):
     build_cache(audio_dir, out, workers=2, config=Config())
     leftovers = [p for p in out.rglob("*") if p.name.endswith(".part")]
     assert leftovers == []
+
+
+def test_second_concurrent_run_is_refused_by_the_lock_and_changes_nothing(tmp_path, audio_dir):
+    import fcntl
+
+    out = tmp_path / "cache"
+    build_cache(audio_dir, out, workers=1)
+    before = {p.relative_to(out): p.stat().st_mtime_ns for p in out.rglob("*")}
+    with open(out / ".lock", "a+") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)  # as a running `frames` holds it
+        with pytest.raises(CacheError, match="lock held"):
+            build_cache(audio_dir, out, workers=1)
+    assert {p.relative_to(out): p.stat().st_mtime_ns for p in out.rglob("*")} == before
+    # released with its holder: the next run proceeds and reuses every clip
+    assert build_cache(audio_dir, out, workers=1).n_reused == 6

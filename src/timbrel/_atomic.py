@@ -9,7 +9,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
-from ._errors import OutputError
+from ._errors import OutputError, TimbrelError
 
 TEMP_SUFFIX = ".part"
 
@@ -86,3 +86,32 @@ def remove_stale_temporaries(folder: str | Path, *, names: Iterable[str] | None 
                 entry.unlink()
                 removed += 1
     return removed
+
+
+LOCK_NAME = ".lock"
+
+
+@contextlib.contextmanager
+def folder_lock(folder: str | Path, *, error: type[TimbrelError], busy: str) -> Iterator[None]:
+    """Hold an exclusive lock on ``folder/.lock`` for the block; refuse if it is held.
+
+    Two runs writing into one output folder would interleave their files and records.
+    The lock is an advisory ``flock``, released by the system when the process ends, so
+    a killed run never leaves it held. A held lock raises ``error(f"{folder}: {busy}")``.
+    """
+    import fcntl
+
+    path = Path(folder) / LOCK_NAME
+    try:
+        fh = open(path, "a+")
+    except OSError as exc:
+        raise OutputError(path, os_reason(exc)) from None
+    try:
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise error(f"{folder}: {busy}") from None
+        yield
+    finally:
+        fh.close()
+

@@ -34,7 +34,14 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
-from ._atomic import atomic_open, atomic_path, make_folder, os_reason, remove_stale_temporaries
+from ._atomic import (
+    atomic_open,
+    atomic_path,
+    folder_lock,
+    make_folder,
+    os_reason,
+    remove_stale_temporaries,
+)
 from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
@@ -246,17 +253,29 @@ def build_cache(
     ------
     ParameterError
         If the source is missing or malformed, or ``out`` is not a usable folder.
+    CacheError
+        If another run is writing into ``out`` (it holds ``out/.lock``).
     """
     t0 = time.perf_counter()
     config = config or Config()
-    fe = config.frontend
-    frame_key = fe.frame_key()
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
     items, extra_columns = discover(source, allow_outside=allow_outside)
+    make_folder(out / "shards")
+    with folder_lock(out, error=CacheError, busy="another `frames` run is writing into this "
+                     "cache (lock held); wait for it or choose another --out"):
+        return _build_locked(source, out, items, extra_columns, config=config,
+                             workers=workers, progress=progress, t0=t0)
+
+
+def _build_locked(source: str | Path, out: Path, items: list[AudioItem],
+                  extra_columns: list[str], *, config: Config, workers: int | None,
+                  progress: bool, t0: float) -> CacheSummary:
+    """The body of :func:`build_cache`, run while holding the cache folder's lock."""
+    fe = config.frontend
+    frame_key = fe.frame_key()
     shard_dir = out / "shards"
-    make_folder(shard_dir)
     remove_stale_temporaries(out)
     remove_stale_temporaries(shard_dir)
 

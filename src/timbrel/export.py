@@ -35,9 +35,11 @@ import pyarrow.parquet as pq
 
 from . import __version__
 from ._atomic import (
+    LOCK_NAME,
     TEMP_SUFFIX,
     atomic_open,
     atomic_path,
+    folder_lock,
     make_folder,
     os_reason,
     remove_stale_temporaries,
@@ -60,7 +62,7 @@ POOLS = ("mean", "max", "std")
 RECORD = "_export.json"
 FAILURES = "_failures.csv"
 CLIPS_DIR = "_clips"
-LOCK = ".lock"
+LOCK = LOCK_NAME
 METADATA_KEY = b"timbrel"
 #: Part-file metadata: the clips of the part that failed, with the reason (JSON object).
 FAILED_KEY = b"timbrel.failed"
@@ -351,26 +353,6 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
 
 # ----------------------------------------------------------------------------- driver side
 
-@contextlib.contextmanager
-def _exclusive(out: Path) -> Iterator[None]:
-    """Hold the dataset's lock; a second export into the same folder is refused."""
-    import fcntl
-
-    try:
-        fh = open(out / LOCK, "a+")
-    except OSError as exc:
-        raise OutputError(out / LOCK, os_reason(exc)) from None
-    try:
-        try:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            raise ExportError(f"{out}: another export is writing into this folder "
-                              "(lock held); wait for it or choose another --out") from None
-        yield
-    finally:
-        fh.close()
-
-
 def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
     """Sources already in complete parts of this model, and parts of another model."""
     done: set[str] = set()
@@ -474,7 +456,8 @@ def export(
     if out.is_dir():
         _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
     make_folder(out)
-    with _exclusive(out):
+    with folder_lock(out, error=ExportError, busy="another export is writing into this "
+                     "folder (lock held); wait for it or choose another --out"):
         _check_only_ours(out)
         if overwrite:
             _clear(out)
