@@ -152,6 +152,21 @@ def test_every_codec_gives_the_same_rows(tmp_path, setup, compression, parquet_c
     assert item.type == "float" and not item.nullable
 
 
+def test_an_export_never_imports_pandas(tmp_path, setup):
+    # pyarrow's pa.array imports pandas on its first call (0.3 s in every worker
+    # process); the export builds its columns from buffers instead. A property that
+    # keeps workers fast, checked in a fresh interpreter, never a duration.
+    script = ("import sys\n"
+              "from timbrel.export import export\n"
+              f"export({str(setup['manifest'])!r}, {str(setup['model'])!r}, "
+              f"{str(tmp_path / 'ds')!r}, workers=1, pool=['mean'])\n"
+              "print('pandas' in sys.modules)\n")
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                            check=True)
+    assert result.stdout.strip() == "False"
+    assert pads.dataset(tmp_path / "ds").count_rows() > 0
+
+
 def test_unknown_codec_is_refused_before_anything_is_written(tmp_path, setup):
     with pytest.raises(ParameterError, match="compression = 'gzip'"):
         export(setup["cache"], setup["model"], tmp_path / "ds", compression="gzip")

@@ -308,22 +308,51 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
     return stats
 
 
+def _numeric_array(values: np.ndarray) -> pa.Array:
+    """A zero-copy Arrow array over a 1-D numpy array of a fixed-width type.
+
+    ``pa.array`` does the same, but its first call in a process imports pandas (when it
+    is installed) to check whether the input is a pandas object: 0.3 s in every worker.
+    """
+    values = np.ascontiguousarray(values)
+    return pa.Array.from_buffers(pa.from_numpy_dtype(values.dtype), len(values),
+                                 [None, pa.py_buffer(values)])
+
+
+def _string_array(values: Sequence[str]) -> pa.Array:
+    """An Arrow string array built from its offsets and bytes (see :func:`_numeric_array`)."""
+    encoded = [v.encode() for v in values]
+    offsets = np.zeros(len(encoded) + 1, np.int32)
+    np.cumsum([len(b) for b in encoded], out=offsets[1:])
+    return pa.Array.from_buffers(pa.string(), len(encoded),
+                                 [None, pa.py_buffer(offsets), pa.py_buffer(b"".join(encoded))])
+
+
+def _repeated_string(value: str, n: int) -> pa.Array:
+    """``n`` copies of ``value`` as an Arrow string array, without a Python list."""
+    encoded = value.encode()
+    offsets = np.arange(n + 1, dtype=np.int32) * np.int32(len(encoded))
+    return pa.Array.from_buffers(pa.string(), n,
+                                 [None, pa.py_buffer(offsets), pa.py_buffer(encoded * n)])
+
+
 def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, fe_cfg: Any,
                  schema: pa.Schema, layout: str, extra_columns: Sequence[str]) -> pa.Table:
     n, n_hidden = feats.shape
     frame = np.arange(start, start + n, dtype=np.int32)
     columns: list[pa.Array] = [
-        pa.array([job["source"]] * n, pa.string()),
-        pa.array(frame),
-        pa.array(frame.astype(np.float64) * fe_cfg.hop_length / fe_cfg.sample_rate),
+        _repeated_string(job["source"], n),
+        _numeric_array(frame),
+        _numeric_array(frame.astype(np.float64) * fe_cfg.hop_length / fe_cfg.sample_rate),
     ]
     feats = np.ascontiguousarray(feats, np.float32)
     if layout == "vector":
-        columns.append(pa.FixedSizeListArray.from_arrays(pa.array(feats.reshape(-1)),
+        columns.append(pa.FixedSizeListArray.from_arrays(_numeric_array(feats.reshape(-1)),
                                                          type=_vector_type(n_hidden)))
     else:
-        columns.extend(pa.array(feats[:, j]) for j in range(n_hidden))
-    columns.extend(pa.array([job["extra"].get(c, "")] * n, pa.string()) for c in extra_columns)
+        by_unit = np.ascontiguousarray(feats.T)  # one pass, then each column is contiguous
+        columns.extend(_numeric_array(by_unit[j]) for j in range(n_hidden))
+    columns.extend(_repeated_string(job["extra"].get(c, ""), n) for c in extra_columns)
     return pa.Table.from_arrays(columns, schema=schema)
 
 
@@ -338,14 +367,15 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
                      metadata: dict[bytes, bytes], compression: str) -> None:
     schema = clip_schema(n_hidden, pools, extra_columns, metadata=metadata)
-    arrays: list[pa.Array] = [pa.array([r["source"] for r in rows], pa.string()),
-                              pa.array([r["n_frames"] for r in rows], pa.int64()),
-                              pa.array([r["duration_s"] for r in rows], pa.float64())]
+    arrays: list[pa.Array] = [
+        _string_array([r["source"] for r in rows]),
+        _numeric_array(np.array([r["n_frames"] for r in rows], np.int64)),
+        _numeric_array(np.array([r["duration_s"] for r in rows], np.float64))]
     for p in pools:
         flat = (np.concatenate([r[p] for r in rows]) if rows else np.zeros(0, np.float32))
-        arrays.append(pa.FixedSizeListArray.from_arrays(pa.array(flat, pa.float32()),
+        arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat.astype(np.float32)),
                                                         type=_vector_type(n_hidden)))
-    arrays.extend(pa.array([r[c] for r in rows], pa.string()) for c in extra_columns)
+    arrays.extend(_string_array([r[c] for r in rows]) for c in extra_columns)
     with atomic_path(path) as tmp:
         pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
                        **_write_options(schema, compression))
