@@ -26,6 +26,7 @@ from ._errors import AudioReadError, ParameterError
 
 __all__ = [
     "AUDIO_EXTENSIONS",
+    "MIN_SAMPLE_RATE",
     "AudioInfo",
     "AudioItem",
     "discover",
@@ -39,6 +40,12 @@ AUDIO_EXTENSIONS = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".aifc", "
 
 #: Seconds of audio decoded per block: bounds memory for any file length.
 BLOCK_SECONDS = 20.0
+#: Lowest sample rate a file may declare. Recorders and codecs start at 8 kHz for speech
+#: (telephony, common practice) and few sound devices go below 4 kHz; a lower figure in
+#: a header is far more likely damage than audio, and resampled to a 16 kHz front end
+#: it would turn a small file into millions of frames (a 1 Hz header on ten minutes of
+#: samples asks for 1.5e11 samples).
+MIN_SAMPLE_RATE = 1000
 
 
 @dataclasses.dataclass(frozen=True)
@@ -207,6 +214,10 @@ def read_info(path: str | Path) -> AudioInfo:
         raise AudioReadError(display_name(str(path)), _decoder_reason(exc)) from None
     if info.samplerate <= 0:
         raise AudioReadError(display_name(str(path)), f"invalid sample rate {info.samplerate}")
+    if info.samplerate < MIN_SAMPLE_RATE:
+        raise AudioReadError(display_name(str(path)), f"implausible sample rate "
+                             f"{info.samplerate} Hz (below {MIN_SAMPLE_RATE} Hz): a damaged "
+                             "header?")
     if info.frames <= 0:
         raise AudioReadError(display_name(str(path)), "holds no samples")
     if shortfall is not None:

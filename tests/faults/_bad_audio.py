@@ -141,6 +141,12 @@ KINDS: list[Kind] = [
          "a sample rate of 0 Hz is meaningless; libsndfile refuses the header",
          _write("zero_rate.wav", wav_header(sr=0, channels=1, bits=16, data_bytes=SR * 2)
                 + _pcm16(tone(1.0)))),
+    Kind("one_hz_sample_rate", "one_hz.wav", False, "implausible sample rate 1 Hz",
+         "a 16 kHz clip whose header says 1 Hz (damage): below every rate recorders use "
+         "(telephony's 8 kHz is the usual floor, common practice), and upsampled to 16 kHz "
+         "it would ask for 16000x its samples",
+         _write("one_hz.wav", wav_header(sr=1, channels=1, bits=16, data_bytes=SR * 2)
+                + _pcm16(tone(1.0)))),
     Kind("nan_samples", "nan.wav", False, "NaN or infinite",
          "IEEE-754 NaN is not a sample value; log-mel of it is undefined",
          _sf("nan.wav", _nan, SR, "FLOAT")),
