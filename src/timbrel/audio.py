@@ -33,6 +33,7 @@ __all__ = [
     "load",
     "read_blocks",
     "read_info",
+    "unreadable_reason",
 ]
 
 #: Extensions a folder search picks up (case-insensitive); libsndfile decides what it reads.
@@ -209,7 +210,7 @@ def read_info(path: str | Path) -> AudioInfo:
             info = sf.info(raw)
             shortfall = _riff_shortfall(raw) if info.format == "WAV" else None
     except OSError as exc:
-        raise AudioReadError(display_name(str(path)), f"cannot read ({exc.strerror})") from None
+        raise AudioReadError(display_name(str(path)), unreadable_reason(exc)) from None
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
         raise AudioReadError(display_name(str(path)), _decoder_reason(exc)) from None
     if info.samplerate <= 0:
@@ -254,16 +255,21 @@ def _riff_shortfall(raw: BinaryIO) -> tuple[int, int] | None:
     return None
 
 
+def unreadable_reason(exc: OSError) -> str:
+    """How a failed ``stat`` or ``open`` of an audio file is reported, in every stage."""
+    if isinstance(exc, FileNotFoundError):  # also a symbolic link to nothing
+        return "no such file"
+    return f"cannot read ({exc.strerror or type(exc).__name__})"
+
+
 def _check_readable(path: Path) -> None:
     name = display_name(str(path))
     if path.is_dir():
         raise AudioReadError(name, "is a folder, not an audio file")
     try:
         size = path.stat().st_size
-    except FileNotFoundError:
-        raise AudioReadError(name, "no such file") from None
     except OSError as exc:
-        raise AudioReadError(name, f"cannot read ({exc.strerror})") from None
+        raise AudioReadError(name, unreadable_reason(exc)) from None
     if size == 0:
         raise AudioReadError(name, "empty file (0 bytes)")
     if not os.access(path, os.R_OK):

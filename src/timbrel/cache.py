@@ -46,7 +46,7 @@ from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
 from ._workers import even_chunks, task_results
-from .audio import AudioItem, discover, display_name, read_blocks, read_info
+from .audio import AudioItem, discover, display_name, read_blocks, read_info, unreadable_reason
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
 
@@ -186,9 +186,7 @@ def _frame_one(job: dict[str, Any], frontend: FrontEnd, write: Callable[[bytes],
         write(np.ascontiguousarray(frames, np.float32).tobytes())
         n_frames += len(frames)
     if n_frames == 0:
-        raise AudioReadError(display_name(str(path)),
-                             f"shorter than one analysis window ({n_samples} samples at "
-                             f"{c.sample_rate} Hz < n_fft {c.fft_length})")
+        raise AudioReadError(display_name(str(path)), frontend.too_short_reason(n_samples))
     return {"source": job["source"], "key": job["key"], "n_frames": n_frames,
             "duration_s": info.duration, "sample_rate": info.sample_rate,
             "channels": info.channels, "file_size": job["size"], "mtime_ns": job["mtime_ns"]}
@@ -287,7 +285,7 @@ def _build_locked(source: str | Path, out: Path, items: list[AudioItem],
         try:
             size, mtime_ns = _file_key(item)
         except OSError as exc:
-            failures[item.source] = f"cannot read ({exc.strerror})"
+            failures[item.source] = unreadable_reason(exc)
             continue
         key = _clip_key(item.source, size, mtime_ns, frame_key)
         if key in pool:

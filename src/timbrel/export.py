@@ -249,6 +249,7 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
     """Features of one clip into ``writer``, in row groups of ``len(group)`` rows filled
     in ``group`` (n_rows, n_hidden), so memory stays flat whatever the clip's length."""
     fe_cfg = frontend.config
+    n_samples = [0]  # decoded samples, for the reason a clip too short gives
     if cache is not None:
         clip = job["clip"]
         frames_all = cache.clip_frames(clip)
@@ -259,7 +260,7 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         path = Path(job["path"])
         duration = read_info(path).duration
         audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
-        blocks = frontend.stream(audio, fe_cfg.sample_rate)
+        blocks = frontend.stream(_counted(audio, n_samples), fe_cfg.sample_rate)
     n_hidden = pipe.rbm.n_hidden
     # clip pooling statistics, gathered only when a clip table is asked for: these
     # float64 passes over every activation cost about a tenth of the model's time
@@ -298,14 +299,20 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                 flush()
     flush()
     if start == 0:
-        raise AudioReadError(job["source"], f"shorter than one analysis window (n_fft "
-                             f"{fe_cfg.fft_length} samples at {fe_cfg.sample_rate} Hz)")
+        raise AudioReadError(job["source"], frontend.too_short_reason(n_samples[0]))
     stats: dict[str, Any] = {"n_frames": start, "duration_s": duration}
     if total is not None and total_sq is not None:
         mean = total / start
         std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
         stats.update(mean=mean.astype(np.float32), max=peak, std=std.astype(np.float32))
     return stats
+
+
+def _counted(blocks: Iterator[np.ndarray], total: list[int]) -> Iterator[np.ndarray]:
+    """Pass ``blocks`` through, adding their sizes to ``total[0]``."""
+    for block in blocks:
+        total[0] += block.size
+        yield block
 
 
 def _numeric_array(values: np.ndarray) -> pa.Array:

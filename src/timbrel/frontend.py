@@ -210,6 +210,12 @@ class FrontEnd:
             return 0
         return 1 + (n_samples - c.fft_length) // c.hop_length
 
+    def too_short_reason(self, n_samples: int) -> str:
+        """Why a clip of ``n_samples`` samples (< n_fft, at the config's rate) gives no frame."""
+        c = self.config
+        return (f"shorter than one analysis window ({n_samples} samples at {c.sample_rate} Hz "
+                f"< n_fft {c.fft_length})")
+
     def frame_times(self, n_frames: int) -> np.ndarray:
         """Start time in seconds of each frame, shape (n_frames,), float64."""
         hop, sr = self.config.hop_length, self.config.sample_rate

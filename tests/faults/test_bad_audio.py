@@ -84,6 +84,8 @@ def _check_run(kind: Kind, audio: Path, work: Path, clean: dict, *, frames_resul
         else:
             assert failed == {} and lines == [], failed
         assert temporaries(out) == []
+    if kind.valid is False:  # one file, one reason, whichever stage met it
+        assert failures(cache)[kind.source] == failures(dataset)[kind.source]
     extra = set(clips) - set(clean["good"])
     if kind.valid:
         assert extra == {kind.source} and set(rows) == set(clips)
