@@ -139,7 +139,6 @@ def profile_parts(n_visible: int, n_hidden: int, n_batches: int, repeats: int
     def updates() -> None:
         for _ in range(n_batches):
             np.einsum("ij,ij->i", weights, grad)  # z gradient coupling term
-            np.multiply(weights, np.float32(1.0), out=weights)  # weight decay
             np.multiply(velocity, np.float32(0.9), out=velocity)
             np.add(velocity, grad, out=velocity)
             np.add(weights, velocity, out=weights)

@@ -38,6 +38,7 @@ from timbrel.model import (
     RBM,
     DivergenceWarning,
     ModelFile,
+    _EpochTally,
     _uniform_fill,
     read_model_file,
 )
@@ -349,6 +350,35 @@ def test_visible_noise_is_standard_normal(rng):
     for column in standardised.T:
         assert scipy.stats.kstest(column, "norm").pvalue > 1e-3
     assert abs(scipy.stats.kurtosis(standardised.ravel())) < 0.05
+
+
+@pytest.mark.parametrize("rate", [1e-3, 1e-4, 1e-5])
+def test_weight_decay_is_not_lost_to_float32_rounding(rng, rate):
+    # Source: algebra: N updates W <- (1 - rate*decay) W give W * (1 - rate*decay)^N. At
+    # rate*decay <= 1e-7 one update's factor rounds to 1 - 1.19e-7 or to exactly 1 in
+    # float32 (machine epsilon 1.19e-7, IEEE 754), so it must be gathered before use.
+    # The gradients are zero here, leaving the decay alone.
+    model = random_model(rng, n_visible=5, n_hidden=4, hidden="relu")
+    model.set_params(weight_decay=1e-4)
+    model._ensure_training_state()
+    start = model.weights_.astype(np.float64)
+
+    def no_gradient(v0, *, tally, **_):
+        tally.rows += len(v0)
+        return (np.zeros_like(model.weights_), np.zeros(5, np.float32),
+                np.zeros(4, np.float32), None)
+
+    model._contrastive_step = no_gradient
+    n_batches = 3000
+    batches = [np.zeros((2, 5), np.float32)] * n_batches
+    tally, failure = model._run_batches(lambda: batches, _EpochTally(4), rate, 0.0, False,
+                                        False, 0.0)
+    assert failure is None and tally.rows == 2 * n_batches
+    expected = start * (1.0 - rate * 1e-4) ** n_batches
+    # each application rounds its factor and the product to float32: 2 half-ulps each
+    applications = np.ceil(n_batches * rate * 1e-4 / 1e-5) + 1
+    np.testing.assert_allclose(model.weights_, expected, rtol=applications * 2.0**-23)
+    assert not np.array_equal(model.weights_, start.astype(np.float32))
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])

@@ -87,6 +87,8 @@ The neglected copies all have input below ``RELU_LINEAR_THRESHOLD + 1 - RELU_WIN
 
 _F32 = np.float32
 _TRANSFORM_CHUNK = 8192
+#: Weight decay is applied once the gathered factor is this far below 1 (see RBM).
+_DECAY_STEP = 1e-5
 _HIDDEN_KINDS = ("relu", "binary", "stepped")
 _VISIBLE_KINDS = ("gaussian", "binary")
 _TIE_KINDS = ("band", "unit")
@@ -416,8 +418,12 @@ class RBM:
         (annealing the learning rate: common practice) let the weights settle once σ
         has shrunk, which raises the curvature the steps meet.
     weight_decay : float, default=1e-4
-        L2 penalty on the weights, ≥ 0, applied directly each update as
-        ``W ← (1 − η·weight_decay) W`` (not accumulated in the momentum).
+        L2 penalty on the weights, ≥ 0: each update shrinks them as
+        ``W ← (1 − η·weight_decay) W`` (not accumulated in the momentum).  The factors of
+        successive updates are multiplied in float64 and applied together once they
+        differ from 1 by ``1e-5`` (and at the end of each epoch): a single update's
+        factor is within float32's rounding of 1 (1 − 1e-7 rounds to 1 − 1.19e-7, and
+        anything above 1 − 6e-8 to exactly 1, as the learning rate decays).
     sparsity_target : float or None, default=None
         Target mean hidden activation (> 0), or None for no sparsity cost.
     sparsity_cost : float, default=0.1
@@ -1459,11 +1465,9 @@ class RBM:
 
     def _apply_update(self, grad_weights: np.ndarray, grad_visible: np.ndarray,
                       grad_hidden: np.ndarray, grad_log_var: np.ndarray | None, *,
-                      momentum: float, rate: float, variance_rate: float) -> None:
+                      momentum: float, variance_rate: float) -> None:
         velocity = self._velocity
         weights = self.weights_
-        if self.weight_decay:
-            weights *= _F32(1.0 - rate * self.weight_decay)
         velocity_weights = velocity["weights"]
         velocity_weights *= _F32(momentum)
         velocity_weights += grad_weights
@@ -1537,6 +1541,7 @@ class RBM:
     def _run_batches(self, make_batches: Callable[[], Iterable[Any]], tally: _EpochTally,
                      rate: float, variance_rate: float, learn_z: bool, use_sparsity: bool,
                      momentum: float) -> tuple[_EpochTally, str | None]:
+        shrink = 1.0  # weight decay of the updates since it was last applied (float64)
         for index, batch in enumerate(make_batches()):
             v0 = self._check_input(batch, name=f"minibatch {index}")
             grads = self._contrastive_step(
@@ -1547,8 +1552,13 @@ class RBM:
                 return tally, f"non-finite reconstruction error at minibatch {index}"
             if self.max_step > 0:
                 grads = self._limit_step(grads, tally)
-            self._apply_update(*grads, momentum=momentum, rate=rate,
-                               variance_rate=variance_rate)
+            self._apply_update(*grads, momentum=momentum, variance_rate=variance_rate)
+            shrink *= 1.0 - rate * float(self.weight_decay)
+            if shrink <= 1.0 - _DECAY_STEP:
+                self.weights_ *= _F32(shrink)
+                shrink = 1.0
+        if shrink != 1.0:
+            self.weights_ *= _F32(shrink)
         if tally.rows == 0:
             raise ParameterError("make_batches() yielded no minibatches")
         return tally, None
