@@ -101,7 +101,7 @@ def stage_times(path: Path, path_44k: Path, model: Path, out: Path, rounds: int
     from threadpoolctl import threadpool_limits
 
     from timbrel.audio import read_blocks
-    from timbrel.export import _frame_table, _write_options, frame_schema
+    from timbrel.export import COMPRESSION, _frame_table, _write_options, frame_schema
     from timbrel.frontend import ContextStacker, FrontEnd
     from timbrel.training import load_pipeline
 
@@ -130,19 +130,17 @@ def stage_times(path: Path, path_44k: Path, model: Path, out: Path, rounds: int
         rows = np.concatenate([rows, stacker.finish()])
         state["feats"] = pipe.rbm.transform(rows)
 
-    def write() -> None:
-        table = _frame_table(job, state["feats"], 0, pipe.config.frontend, schema,
-                             "vector", [])
-        pq.write_table(table, out, **_write_options(schema))
-
-    def write_uncompressed() -> None:
-        table = _frame_table(job, state["feats"], 0, pipe.config.frontend, schema,
-                             "vector", [])
-        pq.write_table(table, out, **_write_options(schema, "none"))
+    def writer(compression: str):
+        def write() -> None:
+            table = _frame_table(job, state["feats"], 0, pipe.config.frontend, schema,
+                                 "vector", [])
+            pq.write_table(table, out, **_write_options(schema, compression))
+        return write
 
     with threadpool_limits(1):
         times = interleaved({"decode": decode, "front end": front_end, "model": model_stage,
-                             "write": write, "write, no compression": write_uncompressed,
+                             "write": writer(COMPRESSION),
+                             "write, no compression": writer("none"),
                              "decode 44.1k": decode_44k,
                              "decode+resample 44.1k": decode_resample_44k}, rounds)
     result = {k: median(v) for k, v in times.items() if "44.1k" not in k}

@@ -15,7 +15,7 @@ import dataclasses
 import math
 import os
 import struct
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import BinaryIO
 
@@ -29,6 +29,7 @@ __all__ = [
     "MIN_SAMPLE_RATE",
     "AudioInfo",
     "AudioItem",
+    "counted_blocks",
     "discover",
     "load",
     "read_blocks",
@@ -253,6 +254,13 @@ def _riff_shortfall(raw: BinaryIO) -> tuple[int, int] | None:
             return chunk_size, present
         pos += 8 + chunk_size + (chunk_size & 1)
     return None
+
+
+def counted_blocks(blocks: Iterable[np.ndarray], total: list[int]) -> Iterator[np.ndarray]:
+    """Pass decoded ``blocks`` through, adding their sample counts to ``total[0]``."""
+    for block in blocks:
+        total[0] += block.size
+        yield block
 
 
 def unreadable_reason(exc: OSError) -> str:

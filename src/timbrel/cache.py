@@ -25,7 +25,7 @@ import json
 import os
 import time
 import uuid
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -46,7 +46,15 @@ from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
 from ._workers import even_chunks, task_results
-from .audio import AudioItem, discover, display_name, read_blocks, read_info, unreadable_reason
+from .audio import (
+    AudioItem,
+    counted_blocks,
+    discover,
+    display_name,
+    read_blocks,
+    read_info,
+    unreadable_reason,
+)
 from .config import Config, FrontEndConfig
 from .frontend import BandStats, FrontEnd
 
@@ -173,20 +181,13 @@ def _frame_one(job: dict[str, Any], frontend: FrontEnd, write: Callable[[bytes],
     c = frontend.config
     info = read_info(path)
     n_frames = 0
-    n_samples = 0
-    blocks = read_blocks(path, sr=c.sample_rate, channel=c.channel)
-
-    def counted() -> Iterator[np.ndarray]:
-        nonlocal n_samples
-        for block in blocks:
-            n_samples += block.size
-            yield block
-
-    for frames in frontend.stream(counted(), c.sample_rate):
+    n_samples = [0]  # decoded samples, for the reason a clip too short gives
+    blocks = counted_blocks(read_blocks(path, sr=c.sample_rate, channel=c.channel), n_samples)
+    for frames in frontend.stream(blocks, c.sample_rate):
         write(np.ascontiguousarray(frames, np.float32).tobytes())
         n_frames += len(frames)
     if n_frames == 0:
-        raise AudioReadError(display_name(str(path)), frontend.too_short_reason(n_samples))
+        raise AudioReadError(display_name(str(path)), frontend.too_short_reason(n_samples[0]))
     return {"source": job["source"], "key": job["key"], "n_frames": n_frames,
             "duration_s": info.duration, "sample_rate": info.sample_rate,
             "channels": info.channels, "file_size": job["size"], "mtime_ns": job["mtime_ns"]}

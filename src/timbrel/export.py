@@ -48,7 +48,7 @@ from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
 from ._workers import even_chunks, task_results
-from .audio import AudioItem, discover, display_name, read_blocks, read_info
+from .audio import AudioItem, counted_blocks, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
 from .config import Config
@@ -62,7 +62,6 @@ POOLS = ("mean", "max", "std")
 RECORD = "_export.json"
 FAILURES = "_failures.csv"
 CLIPS_DIR = "_clips"
-LOCK = LOCK_NAME
 METADATA_KEY = b"timbrel"
 #: Part-file metadata: the clips of the part that failed, with the reason (JSON object).
 FAILED_KEY = b"timbrel.failed"
@@ -88,7 +87,7 @@ COMPRESSION = "zstd"
 
 def _vector_type(n_hidden: int) -> pa.DataType:
     # the items are never null: declaring so spares the Parquet writer a definition level
-    # per value (a third of the uncompressed write time at 1024 units)
+    # per value (one 60 s file at 1024 units, uncompressed: 74 -> 60 ms in one run)
     return pa.list_(pa.field("item", pa.float32(), nullable=False), n_hidden)
 
 
@@ -103,9 +102,8 @@ def frame_schema(n_hidden: int, extra_columns: Sequence[str] = (), *,
 
     Columns: ``source`` (string), ``frame`` (int32), ``start_s`` (float64), then
     ``features`` (fixed-size list of non-null float32, ``n_hidden`` long) for
-    ``layout="vector"``
-    or one float32 column per hidden unit (``h0000``, ``h0001``, ...) for ``"wide"``,
-    then the manifest columns as strings.
+    ``layout="vector"`` or one float32 column per hidden unit (``h0000``, ``h0001``, ...)
+    for ``"wide"``, then the manifest columns as strings.
     """
     fields = [pa.field("source", pa.string(), nullable=False),
               pa.field("frame", pa.int32(), nullable=False),
@@ -260,7 +258,7 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         path = Path(job["path"])
         duration = read_info(path).duration
         audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
-        blocks = frontend.stream(_counted(audio, n_samples), fe_cfg.sample_rate)
+        blocks = frontend.stream(counted_blocks(audio, n_samples), fe_cfg.sample_rate)
     n_hidden = pipe.rbm.n_hidden
     # clip pooling statistics, gathered only when a clip table is asked for: these
     # float64 passes over every activation cost about a tenth of the model's time
@@ -306,13 +304,6 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
         stats.update(mean=mean.astype(np.float32), max=peak, std=std.astype(np.float32))
     return stats
-
-
-def _counted(blocks: Iterator[np.ndarray], total: list[int]) -> Iterator[np.ndarray]:
-    """Pass ``blocks`` through, adding their sizes to ``total[0]``."""
-    for block in blocks:
-        total[0] += block.size
-        yield block
 
 
 def _numeric_array(values: np.ndarray) -> pa.Array:
@@ -379,8 +370,9 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
         _numeric_array(np.array([r["n_frames"] for r in rows], np.int64)),
         _numeric_array(np.array([r["duration_s"] for r in rows], np.float64))]
     for p in pools:
+        # the clip statistics are float32 already
         flat = (np.concatenate([r[p] for r in rows]) if rows else np.zeros(0, np.float32))
-        arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat.astype(np.float32)),
+        arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat),
                                                         type=_vector_type(n_hidden)))
     arrays.extend(_string_array([r[c] for r in rows]) for c in extra_columns)
     with atomic_path(path) as tmp:
@@ -647,7 +639,7 @@ def _write_failures(out: Path, failures: dict[str, str]) -> None:
 
 def _ours(name: str) -> bool:
     """Whether a dataset folder entry is one timbrel writes."""
-    return (name in (RECORD, FAILURES, CLIPS_DIR, LOCK)
+    return (name in (RECORD, FAILURES, CLIPS_DIR, LOCK_NAME)
             or fnmatch.fnmatch(name, "part-*.parquet")
             or (name.startswith(".") and name.endswith(TEMP_SUFFIX)))
 
@@ -667,7 +659,7 @@ def _check_only_ours(out: Path) -> None:
 def _clear(out: Path) -> None:
     """Delete the dataset in ``out``: only the entries timbrel writes."""
     for entry in out.iterdir():
-        if entry.name == LOCK or not _ours(entry.name):
+        if entry.name == LOCK_NAME or not _ours(entry.name):
             continue
         if entry.name == CLIPS_DIR and entry.is_dir():
             for part in entry.glob("part-*.parquet"):
