@@ -21,4 +21,3 @@ def single_blas_thread() -> Iterator[None]:
         return
     with threadpool_limits(1):
         yield
-

@@ -22,6 +22,7 @@ from typing import BinaryIO
 import numpy as np
 import soundfile as sf
 
+from ._atomic import os_reason
 from ._errors import AudioReadError, ParameterError
 
 __all__ = [
@@ -267,7 +268,7 @@ def unreadable_reason(exc: OSError) -> str:
     """How a failed ``stat`` or ``open`` of an audio file is reported, in every stage."""
     if isinstance(exc, FileNotFoundError):  # also a symbolic link to nothing
         return "no such file"
-    return f"cannot read ({exc.strerror or type(exc).__name__})"
+    return f"cannot read ({os_reason(exc)})"
 
 
 def _check_readable(path: Path) -> None:

@@ -49,6 +49,7 @@ from typing import Any
 
 import numpy as np
 
+from timbrel._atomic import os_reason
 from timbrel._errors import (
     DivergenceError,
     ModelFileError,
@@ -1964,7 +1965,7 @@ class RBM:
             handle, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part",
                                                  dir=folder)
         except OSError as exc:
-            raise OutputError(path, exc.strerror or str(exc)) from None
+            raise OutputError(path, os_reason(exc)) from None
         try:
             with os.fdopen(handle, "wb") as stream:
                 np.savez(stream, allow_pickle=False, **contents)
@@ -1976,7 +1977,7 @@ class RBM:
             if os.path.exists(temp_name):
                 os.unlink(temp_name)
             if isinstance(exc, OSError):  # disk full, I/O error: name the file, no traceback
-                raise OutputError(path, exc.strerror or str(exc)) from None
+                raise OutputError(path, os_reason(exc)) from None
             raise
         return path
 
