@@ -103,6 +103,18 @@ def test_lazy_public_names_resolve_to_their_modules():
         timbrel.no_such_name  # noqa: B018
 
 
+def test_probe_command_pools_as_the_library_does():
+    # the command spells the default out so that --help stays light; it must not drift
+    import inspect
+
+    from timbrel.cli import probe_command
+    from timbrel.evaluation import PROBE_POOLS, probe
+
+    option = inspect.signature(probe_command).parameters["pool"].default
+    assert tuple(option.split(",")) == PROBE_POOLS == inspect.signature(probe).parameters[
+        "pools"].default
+
+
 def test_fit_inspect_export_probe_chain(tmp_path):
     # the whole chain through the command line on a tiny labelled set
     rng = np.random.default_rng(8)

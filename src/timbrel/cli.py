@@ -268,8 +268,10 @@ def probe_command(
     baseline: Annotated[str, typer.Option(
         "--baseline", help="Hand-made baselines to compare: mfcc,logmel (empty for none).")
     ] = "mfcc,logmel",
-    pool: Annotated[str, typer.Option("--pool", help="Pooling of frame features per clip.")
-                    ] = "mean,max",
+    # evaluation.PROBE_POOLS, spelled out so that --help need not import the stage
+    pool: Annotated[str, typer.Option(
+        "--pool", help="Pooling of frame features per clip: max, mean, std, comma-separated.")
+    ] = "max",
     folds: Annotated[int, typer.Option("--folds", min=2, help="Folds without a split column.")
                      ] = 5,
     audio_root: Annotated[Path | None, typer.Option(

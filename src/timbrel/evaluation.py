@@ -22,11 +22,17 @@ from ._errors import ParameterError
 from .audio import load
 from .frontend import FrontEnd
 
-__all__ = ["BASELINES", "FRAME_POOLS", "ProbeResult", "ProbeScore", "pool_frames", "probe",
-           "read_clip_features"]
+__all__ = ["BASELINES", "FRAME_POOLS", "PROBE_POOLS", "ProbeResult", "ProbeScore",
+           "pool_frames", "probe", "read_clip_features"]
 
 BASELINES = ("mfcc", "logmel")
 FRAME_POOLS = ("mean", "max", "std")
+#: Default pooling of the learned features. Max alone was chosen on held-out voices of
+#: the spoken-word set (``bench/bench_probe.py --voices validation``, 480 clips, three
+#: seeds): 0.957 against 0.924 for mean and max, 0.898 for mean and std, 0.869 for the
+#: mean alone. A clip's mean activation carries its speaker; whether a unit fired at
+#: all carries the word.
+PROBE_POOLS = ("max",)
 N_MFCC = 20
 
 
@@ -218,7 +224,7 @@ def probe(
     label: str = "label",
     split_column: str | None = "split",
     baselines: Sequence[str] = BASELINES,
-    pools: Sequence[str] = ("mean", "max"),
+    pools: Sequence[str] = PROBE_POOLS,
     folds: int = 5,
     seed: int = 0,
     audio_root: str | Path | None = None,
@@ -237,8 +243,8 @@ def probe(
     baselines : sequence of {"mfcc", "logmel"}, default both
         Hand-made features computed from the same audio in the same run: MFCCs (20) with
         deltas, mean- and std-pooled; the model's own log-mel frames, mean- and std-pooled.
-    pools : sequence of {"mean", "max", "std"}, default ("mean", "max")
-        Pooling of the learned frame features over each clip.
+    pools : sequence of {"mean", "max", "std"}, default ("max",)
+        Pooling of the learned frame features over each clip (see :data:`PROBE_POOLS`).
     folds : int >= 2, default 5
     seed : int, default 0
     audio_root : str or Path, optional
