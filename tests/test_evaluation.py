@@ -73,6 +73,19 @@ def test_probe_separates_tones_and_reports_baselines(tones):
         assert score.accuracy == pytest.approx(1.0)
         assert np.sum(score.confusion) == 6
     assert "macro-F1" in result.table()
+    # each row says how its clips were pooled: the learned features by the default,
+    # the baselines by mean and std
+    assert [s.pooling for s in result.scores] == ["max", "mean,std", "mean,std"]
+    assert result.to_dict()["scores"][0]["pooling"] == "max"
+    assert all(s.pooling in line for s, line in zip(
+        result.scores, result.table().splitlines()[2:], strict=False))
+
+
+@pytest.mark.parametrize("pools", [("mean",), ("max", "std")])
+def test_probe_reports_the_pooling_it_was_given(tones, pools):
+    score = probe(tones / "ds", baselines=(), pools=pools).scores[0]
+    assert score.pooling == ",".join(pools)
+    assert score.n_features % len(pools) == 0
 
 
 def test_probe_without_split_uses_folds_over_clips(tones):

@@ -33,6 +33,8 @@ FRAME_POOLS = ("mean", "max", "std")
 #: mean alone. A clip's mean activation carries its speaker; whether a unit fired at
 #: all carries the word.
 PROBE_POOLS = ("max",)
+#: Pooling of the hand-made baselines: mean and spread of MFCCs over a clip, as usual.
+BASELINE_POOLS = ("mean", "std")
 N_MFCC = 20
 
 
@@ -129,6 +131,7 @@ class ProbeScore:
     """One feature set's result on the held-out clips."""
 
     name: str
+    pooling: str  # the poolings over each clip, comma-separated (e.g. "max", "mean,std")
     n_features: int
     accuracy: float
     macro_f1: float
@@ -156,9 +159,10 @@ class ProbeResult:
                   else f"{self.n_test} clips, each scored once")
         lines = [f"probe: multinomial logistic regression, {self.scheme}; "
                  f"{counts}, {len(self.classes)} classes",
-                 f"{'features':<16}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}"]
+                 f"{'features':<16}{'pooled':<10}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}"]
         for s in self.scores:
-            lines.append(f"{s.name:<16}{s.n_features:>6}{s.accuracy:>10.3f}{s.macro_f1:>10.3f}")
+            lines.append(f"{s.name:<16}{s.pooling:<10}{s.n_features:>6}{s.accuracy:>10.3f}"
+                         f"{s.macro_f1:>10.3f}")
         lines.append("per-class recall:")
         width = max(len(c) for c in self.classes) + 2
         lines.append(" " * width + "".join(f"{s.name[:12]:>14}" for s in self.scores))
@@ -181,7 +185,7 @@ def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.nda
     for path in paths:
         y = load(path, sr=c.sample_rate, channel=c.channel)
         if kind == "logmel":
-            rows.append(pool_frames(fe.frames(y, c.sample_rate), ("mean", "std")))
+            rows.append(pool_frames(fe.frames(y, c.sample_rate), BASELINE_POOLS))
             continue
         # MFCCs with deltas from librosa, with the model's own framing and mel settings
         mfcc = librosa.feature.mfcc(
@@ -191,12 +195,13 @@ def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.nda
         width = min(9, mfcc.shape[1] if mfcc.shape[1] % 2 else mfcc.shape[1] - 1)
         delta = (librosa.feature.delta(mfcc, width=width) if width >= 3
                  else np.zeros_like(mfcc))
-        rows.append(pool_frames(np.vstack([mfcc, delta]).T, ("mean", "std")))
+        rows.append(pool_frames(np.vstack([mfcc, delta]).T, BASELINE_POOLS))
     return np.array(rows)
 
 
-def _score(name: str, X: np.ndarray, y: np.ndarray, classes: list[str],
-           splits: list[tuple[np.ndarray, np.ndarray]], seed: int) -> ProbeScore:
+def _score(name: str, pools: Sequence[str], X: np.ndarray, y: np.ndarray,
+           classes: list[str], splits: list[tuple[np.ndarray, np.ndarray]], seed: int
+           ) -> ProbeScore:
     from sklearn.linear_model import LogisticRegression
     from sklearn.metrics import confusion_matrix, f1_score, recall_score
     from sklearn.pipeline import make_pipeline
@@ -212,7 +217,8 @@ def _score(name: str, X: np.ndarray, y: np.ndarray, classes: list[str],
     t, p = np.concatenate(truth), np.concatenate(predicted)
     recall = recall_score(t, p, labels=classes, average=None, zero_division=0)
     return ProbeScore(
-        name=name, n_features=int(X.shape[1]), accuracy=float(np.mean(t == p)),
+        name=name, pooling=",".join(pools), n_features=int(X.shape[1]),
+        accuracy=float(np.mean(t == p)),
         macro_f1=float(f1_score(t, p, labels=classes, average="macro", zero_division=0)),
         per_class_recall={c: float(r) for c, r in zip(classes, recall, strict=True)},
         confusion=confusion_matrix(t, p, labels=classes).tolist())
@@ -289,7 +295,7 @@ def probe(
                                  "cannot cross-validate")
         splits = list(StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(X, y))
         scheme = f"stratified {k}-fold over clips"
-    scores = [_score(f"rbm-{meta.get('hidden', '?')}", X, y, classes, splits, seed)]
+    scores = [_score(f"rbm-{meta.get('hidden', '?')}", pools, X, y, classes, splits, seed)]
     if baselines:
         root = Path(audio_root or meta.get("audio_root", "."))
         from .config import FrontEndConfig
@@ -297,7 +303,7 @@ def probe(
         fe = FrontEnd(FrontEndConfig(**meta["frontend"]))
         paths = [root / s for s in sources]
         for kind in baselines:
-            scores.append(_score(kind, _baseline_features(kind, paths, fe), y, classes, splits,
-                                 seed))
+            scores.append(_score(kind, BASELINE_POOLS, _baseline_features(kind, paths, fe), y,
+                                 classes, splits, seed))
     return ProbeResult(classes=classes, scheme=scheme, n_train=len(splits[0][0]),
                        n_test=int(sum(len(t) for _, t in splits)), scores=scores)
