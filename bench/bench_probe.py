@@ -128,6 +128,14 @@ def main(argv: list[str] | None = None) -> dict:
               f"{mean(name, 'macro_f1'):>10.3f}  {each}")
     for name, b in baselines.items():
         print(f"  {name:<12}{b['dims']:>6}{b['accuracy']:>10.3f}{b['macro_f1']:>10.3f}")
+    # the resolution of these figures: a clip is 100 / n_test points, and the seeds differ
+    errors = {name: [round((1 - r["accuracy"]) * n_test) for r in rows]
+              for name, rows in runs.items()}
+    result.update(points_per_test_clip=round(100 / n_test, 2), errors_per_seed=errors,
+                  mfcc_errors=round((1 - mfcc) * n_test))
+    print(f"  one test clip is {100 / n_test:.2f} points; errors of {n_test} clips per seed: "
+          + "; ".join(f"{name} {', '.join(map(str, e))}" for name, e in errors.items())
+          + f"; mfcc {result['mfcc_errors']}")
     line = (f"relu - mfcc: {over_mfcc:+.1f} points (target >= +{TARGET_POINTS_OVER_MFCC:.0f}: "
             f"{'met' if result['met_over_mfcc'] else 'MISSED'})")
     if "relu_points_over_binary" in result:
