@@ -13,7 +13,8 @@ step "1/6 frames: demo_audio/manifest.csv -> $OUT/cache"
 "$TIMBREL" frames demo_audio/manifest.csv --out "$OUT/cache" --config "$CONFIG"
 
 step "2/6 fit: $OUT/cache -> $OUT/model.npz"
-"$TIMBREL" fit "$OUT/cache" --out "$OUT/model.npz" --config "$CONFIG"
+# a fixed seed, so every run prints the same figures (without one, fit draws a fresh seed)
+"$TIMBREL" fit "$OUT/cache" --out "$OUT/model.npz" --config "$CONFIG" --seed "${SEED:-0}"
 
 step "3/6 export: per-frame features -> $OUT/features (Parquet dataset)"
 "$TIMBREL" export demo_audio/manifest.csv --model "$OUT/model.npz" --out "$OUT/features" \
