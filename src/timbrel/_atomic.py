@@ -97,7 +97,9 @@ def folder_lock(folder: str | Path, *, error: type[TimbrelError], busy: str) -> 
 
     Two runs writing into one output folder would interleave their files and records.
     The lock is an advisory ``flock``, released by the system when the process ends, so
-    a killed run never leaves it held. A held lock raises ``error(f"{folder}: {busy}")``.
+    a killed run never leaves it held. Worker processes forked by the run share it, so
+    it stays held until the last of them has ended too: while one lives, the run is
+    still writing. A held lock raises ``error(f"{folder}: {busy}")``.
     """
     import fcntl
 

@@ -184,13 +184,47 @@ def _kill_when(args, ready, timeout=240.0) -> None:
     finally:
         os.killpg(proc.pid, signal.SIGKILL)
         proc.wait()
+        _wait_for_group_end(proc.pid, deadline)
+
+
+def _wait_for_group_end(group: int, deadline: float) -> None:
+    """Wait until no live process of ``group`` is left.
+
+    The killed run's worker processes share its folder lock (they are forked with its
+    descriptor), so the lock is free only once the last of them has died, a moment
+    after the parent; a re-run started before then is rightly refused as concurrent.
+    Zombies hold no descriptors and are not waited for (Linux /proc; elsewhere a pause).
+    """
+    proc_root = "/proc"
+    if not os.path.isdir(proc_root):
+        time.sleep(1.0)
+        return
+    while time.monotonic() < deadline:
+        alive = False
+        for entry in os.listdir(proc_root):
+            if not entry.isdigit():
+                continue
+            try:
+                with open(f"{proc_root}/{entry}/stat") as fh:
+                    # "pid (comm) state ppid pgrp ...": comm may hold spaces or ")"
+                    fields = fh.read().rsplit(")", 1)[1].split()
+            except OSError:  # the process ended while we looked
+                continue
+            if int(fields[2]) == group and fields[0] != "Z":
+                alive = True
+                break
+        if not alive:
+            return
+        time.sleep(0.01)
+    raise AssertionError(f"processes of the killed group {group} still alive")
 
 
 def test_frames_with_workers_killed_from_outside(tmp_path, reference):
     out = tmp_path / "cache"
     args = ["frames", reference / "audio", "--out", out, "-q", "-j", "2", *SETTINGS]
     _kill_when(args, lambda: any((out / "shards").glob("*.json")))
-    assert invoke(*args).exit_code == 0
+    result = invoke(*args)
+    assert result.exit_code == 0, result.output
     _same_cache(out, reference / "cache")
 
 
@@ -199,7 +233,8 @@ def test_export_with_workers_killed_from_outside(tmp_path, reference):
     args = ["export", reference / "audio", "--model", reference / "model.npz", "--out", out,
             "-q", "-j", "2", *EXPORT_OPTIONS]
     _kill_when(args, lambda: any(out.glob("part-*.parquet")))
-    assert invoke(*args).exit_code == 0
+    result = invoke(*args)
+    assert result.exit_code == 0, result.output
     _same_dataset(out, reference / "ds")
 
 
