@@ -98,7 +98,7 @@ class FrontEndConfig:
     n_fft: int | None = _field(None, "FFT length in samples; default: next power of two "
                                "at or above the window", low=16, high=65536, optional=True)
     window: str = _field("hann", "window function", choices=WINDOWS)
-    n_mels: int = _field(40, "number of mel bands", low=1, high=512)
+    n_mels: int = _field(64, "number of mel bands", low=1, high=512)
     fmin: float = _field(0.0, "lowest filter edge, Hz", low=0.0, high=192000.0)
     fmax: float | None = _field(None, "highest filter edge, Hz; default: sample_rate / 2",
                                 low=1.0, high=192000.0, optional=True)
