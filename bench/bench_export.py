@@ -291,10 +291,11 @@ def main(argv: list[str] | None = None) -> dict:
               f"{sizes['fixed_seconds']:.2f} s fixed start-up + a steady "
               f"{sizes['steady_realtime_factor']}x")
     print(f"  default codec (zstd 1): stages alone would give {bound:.0f}x; "
-          f"{result['realtime_per_worker_cpu_second']}x per worker CPU second; the workers "
-          f"got {cpu_share:.0%} of {workers} cores over the wall time (load average "
-          f"{load_before:.1f} -> {load_after:.1f}) and spent {outside:.0%} of their CPU "
-          "outside the stages")
+          + (f"{result['realtime_per_worker_cpu_second']}x per worker CPU second; the "
+             f"workers got {cpu_share:.0%} of {workers} cores over the wall time (load "
+             f"average {load_before:.1f} -> {load_after:.1f}) and spent {outside:.0%} of "
+             "their CPU outside the stages" if cpu else
+             "one task ran in this process, so there is no worker CPU time to split"))
     for k, v in stages.items():
         share = f"{v / per_file:6.1%}" if k not in ASIDE else "   n/a"
         print(f"  {k:<22} {share}  ({v:.3f} s per 60 s file, one thread)")
