@@ -152,6 +152,27 @@ def test_every_codec_gives_the_same_rows(tmp_path, setup, compression, parquet_c
     assert item.type == "float" and not item.nullable
 
 
+@pytest.mark.parametrize("layout", ["vector", "wide"])
+def test_statistics_kept_where_a_reader_can_filter(tmp_path, setup, layout):
+    out = tmp_path / layout
+    export(setup["cache"], setup["model"], out, workers=1, layout=layout, pool=["max"])
+    for part in sorted(out.glob("part-*.parquet")) + sorted((out / "_clips").glob("*.parquet")):
+        meta = pq.ParquetFile(part).metadata.row_group(0)
+        stats = {meta.column(c).path_in_schema: meta.column(c).is_stats_set
+                 for c in range(meta.num_columns)}
+        # per-column min/max let DuckDB and pyarrow skip row groups on these filters
+        assert stats["source"]
+        assert all(stats[p] for p in stats if p.startswith(("frame", "start_s", "h0")))
+        # a vector column's extremes over all units prune nothing, so none is written
+        assert not any(stats[p] for p in stats if p.endswith(".list.element"))
+    # outside reader: DuckDB, which checks a filter against row-group statistics before
+    # reading (common practice in Parquet readers), finds exactly that clip's rows
+    (n_one,), = duckdb.sql(f"select count(*) from read_parquet('{out}/part-*.parquet') "
+                           "where source = 'clips/s03.wav'").fetchall()
+    table = _sorted_table(out)
+    assert n_one == table.filter(pads.field("source") == "clips/s03.wav").num_rows > 0
+
+
 def test_an_export_never_imports_pandas(tmp_path, setup):
     # pyarrow's pa.array imports pandas on its first call (0.3 s in every worker
     # process); the export builds its columns from buffers instead. A property that
