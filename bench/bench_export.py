@@ -159,17 +159,20 @@ def codec_table(feats: np.ndarray, out: Path, rounds: int, frontend) -> dict[str
     """Write time relative to no compression, and compression ratio, per candidate."""
     import pyarrow.parquet as pq
 
-    from timbrel.export import _frame_table, frame_schema
+    from timbrel.export import _frame_table, _write_options, frame_schema
 
     schema = frame_schema(feats.shape[1])
     table = _frame_table({"source": "x.wav", "extra": {}}, feats, 0, frontend, schema,
                          "vector", [])
     element = "features.list.element"
-    plain = {"use_dictionary": ["source"]}
+    # the export's own dictionary and statistics settings, under every codec
+    plain = {k: v for k, v in _write_options(schema, "none").items()
+             if k in ("use_dictionary", "write_statistics")}
     candidates = {
         "none": {"compression": "none", **plain},
         "zstd 1 (chosen)": {"compression": "zstd", "compression_level": 1, **plain},
-        "zstd, float dictionary (pyarrow default)": {"compression": "zstd"},
+        "zstd, float dictionary (pyarrow default)": {
+            "compression": "zstd", "write_statistics": plain["write_statistics"]},
         "zstd 3": {"compression": "zstd", "compression_level": 3, **plain},
         "zstd 1 + byte-stream split": {"compression": "zstd", "compression_level": 1,
                                        "use_byte_stream_split": [element], **plain},
