@@ -358,7 +358,7 @@ def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[st
     """Codec settings for a part file of ``schema`` (see :data:`CODEC_LEVELS`).
 
     Min/max statistics are kept for every column a reader can filter on (source, frame,
-    time, the extra columns, each unit of the wide layout) and left out for the list
+    start_s, the extra columns, each unit of the wide layout) and left out for the list
     columns of feature vectors: a page's extremes over all units at once prune nothing,
     and leaving them out made the write of a 60 s file at 1024 units 7 % faster (zstd 1,
     medians over 11 and 21 alternate rounds, bench/bench_export.py's settings).
