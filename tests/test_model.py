@@ -39,6 +39,8 @@ from timbrel.model import (
     DivergenceWarning,
     ModelFile,
     _EpochTally,
+    _relu,
+    _standard_normal,
     _uniform_fill,
     read_model_file,
 )
@@ -350,6 +352,31 @@ def test_visible_noise_is_standard_normal(rng):
     for column in standardised.T:
         assert scipy.stats.kstest(column, "norm").pvalue > 1e-3
     assert abs(scipy.stats.kurtosis(standardised.ravel())) < 0.05
+
+
+@pytest.mark.parametrize("variance", [0.5, 2.0])
+@pytest.mark.parametrize("size", [10, 11])
+def test_normal_draws_scale_with_the_variance_asked(variance, size):
+    # Source: algebra, N(0, v) = √v · N(0, 1): the same uniforms give the unit draws
+    # times √v (float32 rounding of the radius's square aside), for even and odd sizes.
+    unit = _standard_normal(np.random.default_rng(3), np.empty(size, np.float32),
+                            np.empty(size, np.float32))
+    scaled = _standard_normal(np.random.default_rng(3), np.empty(size, np.float32),
+                              np.empty(size, np.float32), variance=variance)
+    np.testing.assert_allclose(scaled, np.sqrt(variance) * unit, rtol=1e-6, atol=1e-7)
+
+
+@pytest.mark.parametrize("shape", [(3, 5), (128, 64), (1, 1)])
+def test_rectifier_matches_numpys_maximum_against_zero(rng, shape):
+    # Source: numpy's maximum(x, 0), the definition the faster array form replaces.
+    x = rng.standard_normal(shape).astype(np.float32)
+    x.flat[0] = -0.0
+    expected = np.maximum(x, 0.0)
+    np.testing.assert_array_equal(_relu(x, np.empty_like(x)), expected)
+    np.testing.assert_array_equal(_relu(x, np.empty_like(x), np.zeros((1, shape[1]),
+                                                                   np.float32)), expected)
+    _relu(x, x)  # in place
+    np.testing.assert_array_equal(x, expected)
 
 
 @pytest.mark.parametrize("rate", [1e-3, 1e-4, 1e-5])
