@@ -1,4 +1,4 @@
-"""Timing helpers shared by the benchmarks: interleaved rounds and medians.
+"""Helpers shared by the benchmarks: interleaved rounds, medians, a scratch folder.
 
 The machines are shared, so a candidate and its reference are timed alternately, round
 after round, and the figure of merit is the median over rounds of their ratio: a burst
@@ -7,9 +7,13 @@ of load from elsewhere then hits both sides of one ratio instead of one side of 
 
 from __future__ import annotations
 
+import contextlib
+import shutil
 import statistics
+import tempfile
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from pathlib import Path
 
 
 def interleaved(candidates: Mapping[str, Callable[[], object]], rounds: int, *,
@@ -34,3 +38,17 @@ def median_ratio(numerator: list[float], denominator: list[float]) -> float:
 
 def median(values: list[float]) -> float:
     return statistics.median(values)
+
+
+@contextlib.contextmanager
+def scratch_dir(prefix: str, *, keep: bool = False) -> Iterator[Path]:
+    """A temporary folder for one benchmark's audio, models and exports (often gigabytes),
+    removed when the benchmark ends, also on an error; ``keep`` leaves it and says where."""
+    path = Path(tempfile.mkdtemp(prefix=prefix))
+    try:
+        yield path
+    finally:
+        if keep:
+            print(f"kept the benchmark's files in {path}")
+        else:
+            shutil.rmtree(path, ignore_errors=True)

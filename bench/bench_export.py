@@ -31,7 +31,6 @@ import json
 import os
 import resource
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -41,7 +40,7 @@ import soundfile as sf
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(HERE))
-from _timing import interleaved, median, median_ratio  # noqa: E402
+from _timing import interleaved, median, median_ratio, scratch_dir  # noqa: E402
 
 FILE_SECONDS = 60.0
 TARGETS = {"issue 4": 300.0, "issue 6": 500.0}
@@ -209,121 +208,124 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--no-codecs", action="store_true", help="skip the codec table")
     parser.add_argument("--codec-rounds", type=int, default=5, help="rounds of the codec table")
     parser.add_argument("--json", type=Path, default=None)
+    parser.add_argument("--keep", action="store_true",
+                        help="keep the temporary audio, models and exports")
     args = parser.parse_args(argv)
 
     from timbrel.frontend import ContextStacker
     from timbrel.training import load_pipeline
 
-    tmp = Path(tempfile.mkdtemp(prefix="timbrel-bench-"))
-    n_files = max(1, round(args.seconds / FILE_SECONDS))
-    paths = make_audio(tmp / "audio", n_files)
-    n_small = min(n_files - 1, round(args.small_seconds / FILE_SECONDS))
-    if n_small > 0:  # the same first files, in a folder of their own
-        make_audio(tmp / "audio_small", n_small)
-    path_44k = make_audio(tmp / "audio44k", 1, sr=44100)[0]
-    model = make_model(tmp, tmp / "audio")
-    audio_seconds = n_files * FILE_SECONDS
-    workers = os.cpu_count() or 1
+    with scratch_dir("timbrel-bench-", keep=args.keep) as tmp:
+        n_files = max(1, round(args.seconds / FILE_SECONDS))
+        paths = make_audio(tmp / "audio", n_files)
+        n_small = min(n_files - 1, round(args.small_seconds / FILE_SECONDS))
+        if n_small > 0:  # the same first files, in a folder of their own
+            make_audio(tmp / "audio_small", n_small)
+        path_44k = make_audio(tmp / "audio44k", 1, sr=44100)[0]
+        model = make_model(tmp, tmp / "audio")
+        audio_seconds = n_files * FILE_SECONDS
+        workers = os.cpu_count() or 1
 
-    load_before = os.getloadavg()[0]
-    # the default codec and no compression, in alternate rounds
-    runs, plain, small = [], [], []
-    for _ in range(args.repeats):
-        runs.append(timed_export(tmp / "audio", model, tmp / "ds", workers))
-        plain.append(timed_export(tmp / "audio", model, tmp / "ds", workers, "none"))
-        if n_small > 0:
-            small.append(timed_export(tmp / "audio_small", model, tmp / "ds", workers))
-    load_after = os.getloadavg()[0]
-    wall = median([w for w, _ in runs])
-    cpu = median([c for _, c in runs])
-    stages = stage_times(paths[0], path_44k, model, tmp / "w.parquet", args.rounds)
-    per_file = sum(v for k, v in stages.items() if k not in ASIDE)
-    bound = FILE_SECONDS * workers / per_file
-    bound_uncompressed = FILE_SECONDS * workers / (
-        per_file - stages["write"] + stages["write, no compression"])
-    # CPU the workers got out of the wall time they had: below 1 they waited, for other
-    # processes on a shared machine or for the pool to start and hand out tasks
-    cpu_share = cpu / (wall * workers) if cpu else float("nan")
-    # CPU the workers spent beyond the stages timed alone: imports, schemas, part files
-    outside = max(0.0, 1.0 - per_file * n_files / cpu) if cpu else float("nan")
-    realtime = audio_seconds / wall
-    realtime_plain = audio_seconds / median([w for w, _ in plain])
-    sizes = None
-    if small:
-        small_seconds = n_small * FILE_SECONDS
-        small_wall = median([w for w, _ in small])
-        per_audio_second = (wall - small_wall) / (audio_seconds - small_seconds)
-        sizes = {"audio_seconds": small_seconds, "wall_seconds": round(small_wall, 3),
-                 "realtime_factor": round(small_seconds / small_wall, 1),
-                 "fixed_seconds": round(small_wall - per_audio_second * small_seconds, 3),
-                 "steady_realtime_factor": (round(1 / per_audio_second, 1)
-                                            if per_audio_second > 0 else None)}
-    result = {
-        "audio_seconds": audio_seconds, "files": n_files, "workers": workers,
-        "wall_seconds": [round(w, 3) for w, _ in runs],
-        "realtime_factor": round(realtime, 1),
-        "realtime_per_worker_cpu_second": round(audio_seconds / cpu, 1) if cpu else None,
-        "targets": {k: {"target": v, "met": realtime >= v} for k, v in TARGETS.items()},
-        "stage_seconds_per_60s_file": {k: round(v, 4) for k, v in stages.items()},
-        "stage_share": {k: round(v / per_file, 3) for k, v in stages.items()
-                        if k not in ASIDE},
-        "stage_bound_realtime": round(bound, 1),
-        "uncompressed": {"wall_seconds": [round(w, 3) for w, _ in plain],
-                         "realtime_factor": round(realtime_plain, 1),
-                         "stage_bound_realtime": round(bound_uncompressed, 1),
-                         "targets": {k: {"target": v, "met": realtime_plain >= v}
-                                     for k, v in TARGETS.items()}},
-        "shorter_export": sizes,
-        "worker_cpu_share_of_wall": round(cpu_share, 3),
-        "worker_cpu_share_outside_stages": round(outside, 3),
-        "load_average_1min": [round(load_before, 2), round(load_after, 2)],
-    }
-    print(f"export: {audio_seconds:.0f} s of 16 kHz audio ({n_files} files) on {workers} "
-          f"workers: {realtime:.0f}x realtime (median of {args.repeats}: "
-          f"{', '.join(f'{w:.2f}' for w, _ in runs)} s); "
-          + "; ".join(f"{k} target >= {v:.0f}x {'met' if realtime >= v else 'MISSED'}"
-                      for k, v in TARGETS.items()))
-    print(f"  with --compression none: {realtime_plain:.0f}x realtime (median of "
-          f"{', '.join(f'{w:.2f}' for w, _ in plain)} s; stages alone {bound_uncompressed:.0f}x); "
-          + "; ".join(f"{k} target >= {v:.0f}x {'met' if realtime_plain >= v else 'MISSED'}"
-                      for k, v in TARGETS.items()))
-    if sizes is not None:
-        print(f"  {sizes['audio_seconds']:.0f} s of the same audio: "
-              f"{sizes['realtime_factor']:.0f}x realtime ({sizes['wall_seconds']:.2f} s); "
-              "from the two sizes: "
-              f"{sizes['fixed_seconds']:.2f} s fixed start-up + a steady "
-              f"{sizes['steady_realtime_factor']}x")
-    print(f"  default codec (zstd 1): stages alone would give {bound:.0f}x; "
-          + (f"{result['realtime_per_worker_cpu_second']}x per worker CPU second; the "
-             f"workers got {cpu_share:.0%} of {workers} cores over the wall time (load "
-             f"average {load_before:.1f} -> {load_after:.1f}) and spent {outside:.0%} of "
-             "their CPU outside the stages" if cpu else
-             "one task ran in this process, so there is no worker CPU time to split"))
-    for k, v in stages.items():
-        share = f"{v / per_file:6.1%}" if k not in ASIDE else "   n/a"
-        print(f"  {k:<22} {share}  ({v:.3f} s per 60 s file, one thread)")
-    if not args.no_codecs:
-        pipe = load_pipeline(model)
-        from timbrel.audio import read_blocks
-        from timbrel.frontend import FrontEnd
+        load_before = os.getloadavg()[0]
+        # the default codec and no compression, in alternate rounds
+        runs, plain, small = [], [], []
+        for _ in range(args.repeats):
+            runs.append(timed_export(tmp / "audio", model, tmp / "ds", workers))
+            plain.append(timed_export(tmp / "audio", model, tmp / "ds", workers, "none"))
+            if n_small > 0:
+                small.append(timed_export(tmp / "audio_small", model, tmp / "ds", workers))
+        load_after = os.getloadavg()[0]
+        wall = median([w for w, _ in runs])
+        cpu = median([c for _, c in runs])
+        stages = stage_times(paths[0], path_44k, model, tmp / "w.parquet", args.rounds)
+        per_file = sum(v for k, v in stages.items() if k not in ASIDE)
+        bound = FILE_SECONDS * workers / per_file
+        bound_uncompressed = FILE_SECONDS * workers / (
+            per_file - stages["write"] + stages["write, no compression"])
+        # CPU the workers got out of the wall time they had: below 1 they waited, for other
+        # processes on a shared machine or for the pool to start and hand out tasks
+        cpu_share = cpu / (wall * workers) if cpu else float("nan")
+        # CPU the workers spent beyond the stages timed alone: imports, schemas, part files
+        outside = max(0.0, 1.0 - per_file * n_files / cpu) if cpu else float("nan")
+        realtime = audio_seconds / wall
+        realtime_plain = audio_seconds / median([w for w, _ in plain])
+        sizes = None
+        if small:
+            small_seconds = n_small * FILE_SECONDS
+            small_wall = median([w for w, _ in small])
+            per_audio_second = (wall - small_wall) / (audio_seconds - small_seconds)
+            sizes = {"audio_seconds": small_seconds, "wall_seconds": round(small_wall, 3),
+                     "realtime_factor": round(small_seconds / small_wall, 1),
+                     "fixed_seconds": round(small_wall - per_audio_second * small_seconds, 3),
+                     "steady_realtime_factor": (round(1 / per_audio_second, 1)
+                                                if per_audio_second > 0 else None)}
+        result = {
+            "audio_seconds": audio_seconds, "files": n_files, "workers": workers,
+            "wall_seconds": [round(w, 3) for w, _ in runs],
+            "realtime_factor": round(realtime, 1),
+            "realtime_per_worker_cpu_second": round(audio_seconds / cpu, 1) if cpu else None,
+            "targets": {k: {"target": v, "met": realtime >= v} for k, v in TARGETS.items()},
+            "stage_seconds_per_60s_file": {k: round(v, 4) for k, v in stages.items()},
+            "stage_share": {k: round(v / per_file, 3) for k, v in stages.items()
+                            if k not in ASIDE},
+            "stage_bound_realtime": round(bound, 1),
+            "uncompressed": {"wall_seconds": [round(w, 3) for w, _ in plain],
+                             "realtime_factor": round(realtime_plain, 1),
+                             "stage_bound_realtime": round(bound_uncompressed, 1),
+                             "targets": {k: {"target": v, "met": realtime_plain >= v}
+                                         for k, v in TARGETS.items()}},
+            "shorter_export": sizes,
+            "worker_cpu_share_of_wall": round(cpu_share, 3),
+            "worker_cpu_share_outside_stages": round(outside, 3),
+            "load_average_1min": [round(load_before, 2), round(load_after, 2)],
+        }
+        print(f"export: {audio_seconds:.0f} s of 16 kHz audio ({n_files} files) on {workers} "
+              f"workers: {realtime:.0f}x realtime (median of {args.repeats}: "
+              f"{', '.join(f'{w:.2f}' for w, _ in runs)} s); "
+              + "; ".join(f"{k} target >= {v:.0f}x {'met' if realtime >= v else 'MISSED'}"
+                          for k, v in TARGETS.items()))
+        print(f"  with --compression none: {realtime_plain:.0f}x realtime (median of "
+              f"{', '.join(f'{w:.2f}' for w, _ in plain)} s; "
+              f"stages alone {bound_uncompressed:.0f}x); "
+              + "; ".join(f"{k} target >= {v:.0f}x {'met' if realtime_plain >= v else 'MISSED'}"
+                          for k, v in TARGETS.items()))
+        if sizes is not None:
+            print(f"  {sizes['audio_seconds']:.0f} s of the same audio: "
+                  f"{sizes['realtime_factor']:.0f}x realtime ({sizes['wall_seconds']:.2f} s); "
+                  "from the two sizes: "
+                  f"{sizes['fixed_seconds']:.2f} s fixed start-up + a steady "
+                  f"{sizes['steady_realtime_factor']}x")
+        print(f"  default codec (zstd 1): stages alone would give {bound:.0f}x; "
+              + (f"{result['realtime_per_worker_cpu_second']}x per worker CPU second; the "
+                 f"workers got {cpu_share:.0%} of {workers} cores over the wall time (load "
+                 f"average {load_before:.1f} -> {load_after:.1f}) and spent {outside:.0%} of "
+                 "their CPU outside the stages" if cpu else
+                 "one task ran in this process, so there is no worker CPU time to split"))
+        for k, v in stages.items():
+            share = f"{v / per_file:6.1%}" if k not in ASIDE else "   n/a"
+            print(f"  {k:<22} {share}  ({v:.3f} s per 60 s file, one thread)")
+        if not args.no_codecs:
+            pipe = load_pipeline(model)
+            from timbrel.audio import read_blocks
+            from timbrel.frontend import FrontEnd
 
-        frames = np.concatenate(list(FrontEnd(pipe.config.frontend).stream(
-            read_blocks(paths[0], sr=16000), 16000)))
-        stacker = ContextStacker(pipe.config.frontend.context)
-        rows = np.concatenate([stacker.push(pipe.standardise(frames)), stacker.finish()])
-        feats = pipe.rbm.transform(rows)
-        codecs = codec_table(feats, tmp / "c.parquet", args.codec_rounds,
-                             pipe.config.frontend)
-        result["codecs"] = codecs
-        result["zero_share"] = round(float((feats == 0).mean()), 3)
-        print(f"  codecs on one file ({result['zero_share']:.0%} exact zeros; write time "
-              "relative to none, compression ratio, read s):")
-        for name, row in codecs.items():
-            print(f"    {name:<42} x{row['time_vs_none']:<5} ratio {row['compression_ratio']:<5}"
-                  f" read {row['read_s']:.3f} s")
-    if args.json:
-        args.json.write_text(json.dumps(result, indent=1))
-    return result
+            frames = np.concatenate(list(FrontEnd(pipe.config.frontend).stream(
+                read_blocks(paths[0], sr=16000), 16000)))
+            stacker = ContextStacker(pipe.config.frontend.context)
+            rows = np.concatenate([stacker.push(pipe.standardise(frames)), stacker.finish()])
+            feats = pipe.rbm.transform(rows)
+            codecs = codec_table(feats, tmp / "c.parquet", args.codec_rounds,
+                                 pipe.config.frontend)
+            result["codecs"] = codecs
+            result["zero_share"] = round(float((feats == 0).mean()), 3)
+            print(f"  codecs on one file ({result['zero_share']:.0%} exact zeros; write time "
+                  "relative to none, compression ratio, read s):")
+            for name, row in codecs.items():
+                print(f"    {name:<42} x{row['time_vs_none']:<5} "
+                      f"ratio {row['compression_ratio']:<5} read {row['read_s']:.3f} s")
+        if args.json:
+            args.json.write_text(json.dumps(result, indent=1))
+        return result
 
 
 if __name__ == "__main__":

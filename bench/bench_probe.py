@@ -26,9 +26,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-import tempfile
 import time
 from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _timing import scratch_dir
 
 ROOT = Path(__file__).resolve().parents[1]
 SPOKEN_WORDS = ROOT / "tests" / ".cache" / "spoken_words"
@@ -47,6 +49,8 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE",
                         help="configuration override, e.g. frontend.context=8 (repeatable)")
     parser.add_argument("--relu-only", action="store_true", help="skip the binary models")
+    parser.add_argument("--keep", action="store_true",
+                        help="keep the temporary audio, models and exports")
     args = parser.parse_args(argv)
 
     sys.path.insert(0, str(ROOT / "tests"))
@@ -76,75 +80,77 @@ def main(argv: list[str] | None = None) -> dict:
                                         test_voices=VALIDATION_VOICES)
     else:
         manifest = make_spoken_word_set(SPOKEN_WORDS)
-    tmp = Path(tempfile.mkdtemp(prefix="timbrel-probe-"))
-    build_cache(manifest, tmp / "cache", config=load_config(overrides=args.override))
-    hiddens = ("relu",) if args.relu_only else ("relu", "binary")
-    runs: dict[str, list[dict]] = {f"rbm-{h}": [] for h in hiddens}
-    baselines: dict[str, dict] = {}
-    for seed in args.seeds:
-        for hidden in hiddens:
-            name = f"{hidden}-{seed}"
-            config = load_config(overrides=[*args.override, f'model.hidden="{hidden}"',
-                                            f"model.seed={seed}"])
-            began = time.perf_counter()
-            history = train(tmp / "cache", tmp / f"{name}.npz", config=config).history
-            seconds = round(time.perf_counter() - began, 1)
-            export(tmp / "cache", tmp / f"{name}.npz", tmp / f"{name}-ds")
-            # the baselines do not depend on the model: computed once
-            outcome = probe(tmp / f"{name}-ds", baselines=() if baselines else ("mfcc", "logmel"))
-            learned, *others = outcome.scores
-            runs[learned.name].append({
-                "seed": seed, "accuracy": round(learned.accuracy, 4),
-                "macro_f1": round(learned.macro_f1, 4), "dims": learned.n_features,
-                "rollbacks": int(sum(h["rollbacks"] for h in history)), "train_seconds": seconds})
-            for s in others:
-                baselines[s.name] = {"accuracy": round(s.accuracy, 4),
-                                     "macro_f1": round(s.macro_f1, 4), "dims": s.n_features}
-            n_train, n_test = outcome.n_train, outcome.n_test
+    with scratch_dir("timbrel-probe-", keep=args.keep) as tmp:
+        build_cache(manifest, tmp / "cache", config=load_config(overrides=args.override))
+        hiddens = ("relu",) if args.relu_only else ("relu", "binary")
+        runs: dict[str, list[dict]] = {f"rbm-{h}": [] for h in hiddens}
+        baselines: dict[str, dict] = {}
+        for seed in args.seeds:
+            for hidden in hiddens:
+                name = f"{hidden}-{seed}"
+                config = load_config(overrides=[*args.override, f'model.hidden="{hidden}"',
+                                                f"model.seed={seed}"])
+                began = time.perf_counter()
+                history = train(tmp / "cache", tmp / f"{name}.npz", config=config).history
+                seconds = round(time.perf_counter() - began, 1)
+                export(tmp / "cache", tmp / f"{name}.npz", tmp / f"{name}-ds")
+                # the baselines do not depend on the model: computed once
+                outcome = probe(tmp / f"{name}-ds",
+                                baselines=() if baselines else ("mfcc", "logmel"))
+                learned, *others = outcome.scores
+                runs[learned.name].append({
+                    "seed": seed, "accuracy": round(learned.accuracy, 4),
+                    "macro_f1": round(learned.macro_f1, 4), "dims": learned.n_features,
+                    "rollbacks": int(sum(h["rollbacks"] for h in history)),
+                    "train_seconds": seconds})
+                for s in others:
+                    baselines[s.name] = {"accuracy": round(s.accuracy, 4),
+                                         "macro_f1": round(s.macro_f1, 4), "dims": s.n_features}
+                n_train, n_test = outcome.n_train, outcome.n_test
 
-    def mean(name: str, key: str = "accuracy") -> float:
-        return float(sum(r[key] for r in runs[name]) / len(runs[name]))
+        def mean(name: str, key: str = "accuracy") -> float:
+            return float(sum(r[key] for r in runs[name]) / len(runs[name]))
 
-    relu, mfcc = mean("rbm-relu"), baselines["mfcc"]["accuracy"]
-    over_mfcc = round(100 * (relu - mfcc), 1)
-    result = {
-        "voices": args.voices, "overrides": list(args.override),
-        "clips_train": n_train, "clips_test_unseen_voices": n_test, "seeds": list(args.seeds),
-        "runs": runs, "baselines": baselines, "relu_points_over_mfcc": over_mfcc,
-        "target_points_over_mfcc": TARGET_POINTS_OVER_MFCC,
-        "met_over_mfcc": over_mfcc >= TARGET_POINTS_OVER_MFCC,
-    }
-    if "rbm-binary" in runs:
-        over_binary = round(100 * (relu - mean("rbm-binary")), 1)
-        result.update(relu_points_over_binary=over_binary, met_over_binary=over_binary > 0)
-    print(f"probe on unseen voices ({args.voices} voices"
-          f"{', ' + ' '.join(args.override) if args.override else ''}): {n_train} training "
-          f"clips, {n_test} test clips (12 words); learned features: mean over seeds "
-          f"{', '.join(map(str, args.seeds))}")
-    print(f"  {'features':<12}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}  per seed")
-    for name, rows in runs.items():
-        each = " ".join(f"{r['accuracy']:.3f}" for r in rows)
-        print(f"  {name:<12}{rows[0]['dims']:>6}{mean(name):>10.3f}"
-              f"{mean(name, 'macro_f1'):>10.3f}  {each}")
-    for name, b in baselines.items():
-        print(f"  {name:<12}{b['dims']:>6}{b['accuracy']:>10.3f}{b['macro_f1']:>10.3f}")
-    # the resolution of these figures: a clip is 100 / n_test points, and the seeds differ
-    errors = {name: [round((1 - r["accuracy"]) * n_test) for r in rows]
-              for name, rows in runs.items()}
-    result.update(points_per_test_clip=round(100 / n_test, 2), errors_per_seed=errors,
-                  mfcc_errors=round((1 - mfcc) * n_test))
-    print(f"  one test clip is {100 / n_test:.2f} points; errors of {n_test} clips per seed: "
-          + "; ".join(f"{name} {', '.join(map(str, e))}" for name, e in errors.items())
-          + f"; mfcc {result['mfcc_errors']}")
-    line = (f"relu - mfcc: {over_mfcc:+.1f} points (target >= +{TARGET_POINTS_OVER_MFCC:.0f}: "
-            f"{'met' if result['met_over_mfcc'] else 'MISSED'})")
-    if "relu_points_over_binary" in result:
-        line += (f"; relu - binary: {result['relu_points_over_binary']:+.1f} points "
-                 f"({'met' if result['met_over_binary'] else 'MISSED'})")
-    print(line)
-    if args.json:
-        args.json.write_text(json.dumps(result, indent=1))
-    return result
+        relu, mfcc = mean("rbm-relu"), baselines["mfcc"]["accuracy"]
+        over_mfcc = round(100 * (relu - mfcc), 1)
+        result = {
+            "voices": args.voices, "overrides": list(args.override),
+            "clips_train": n_train, "clips_test_unseen_voices": n_test, "seeds": list(args.seeds),
+            "runs": runs, "baselines": baselines, "relu_points_over_mfcc": over_mfcc,
+            "target_points_over_mfcc": TARGET_POINTS_OVER_MFCC,
+            "met_over_mfcc": over_mfcc >= TARGET_POINTS_OVER_MFCC,
+        }
+        if "rbm-binary" in runs:
+            over_binary = round(100 * (relu - mean("rbm-binary")), 1)
+            result.update(relu_points_over_binary=over_binary, met_over_binary=over_binary > 0)
+        print(f"probe on unseen voices ({args.voices} voices"
+              f"{', ' + ' '.join(args.override) if args.override else ''}): {n_train} training "
+              f"clips, {n_test} test clips (12 words); learned features: mean over seeds "
+              f"{', '.join(map(str, args.seeds))}")
+        print(f"  {'features':<12}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}  per seed")
+        for name, rows in runs.items():
+            each = " ".join(f"{r['accuracy']:.3f}" for r in rows)
+            print(f"  {name:<12}{rows[0]['dims']:>6}{mean(name):>10.3f}"
+                  f"{mean(name, 'macro_f1'):>10.3f}  {each}")
+        for name, b in baselines.items():
+            print(f"  {name:<12}{b['dims']:>6}{b['accuracy']:>10.3f}{b['macro_f1']:>10.3f}")
+        # the resolution of these figures: a clip is 100 / n_test points, and the seeds differ
+        errors = {name: [round((1 - r["accuracy"]) * n_test) for r in rows]
+                  for name, rows in runs.items()}
+        result.update(points_per_test_clip=round(100 / n_test, 2), errors_per_seed=errors,
+                      mfcc_errors=round((1 - mfcc) * n_test))
+        print(f"  one test clip is {100 / n_test:.2f} points; errors of {n_test} clips per seed: "
+              + "; ".join(f"{name} {', '.join(map(str, e))}" for name, e in errors.items())
+              + f"; mfcc {result['mfcc_errors']}")
+        line = (f"relu - mfcc: {over_mfcc:+.1f} points (target >= +{TARGET_POINTS_OVER_MFCC:.0f}: "
+                f"{'met' if result['met_over_mfcc'] else 'MISSED'})")
+        if "relu_points_over_binary" in result:
+            line += (f"; relu - binary: {result['relu_points_over_binary']:+.1f} points "
+                     f"({'met' if result['met_over_binary'] else 'MISSED'})")
+        print(line)
+        if args.json:
+            args.json.write_text(json.dumps(result, indent=1))
+        return result
 
 
 if __name__ == "__main__":

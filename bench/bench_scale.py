@@ -24,12 +24,11 @@ import argparse
 import json
 import subprocess
 import sys
-import tempfile
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
-from _timing import interleaved, median, median_ratio  # noqa: E402
+from _timing import interleaved, median, median_ratio, scratch_dir  # noqa: E402
 from bench_export import SETTINGS, make_audio, make_model  # noqa: E402
 
 TARGET_TWO_WORKERS = 1.6
@@ -228,74 +227,76 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--json", type=Path, default=None)
     parser.add_argument("--chart", type=Path, default=HERE / "out" / "scale.png")
+    parser.add_argument("--keep", action="store_true",
+                        help="keep the temporary audio, models and exports")
     args = parser.parse_args(argv)
 
-    tmp = Path(tempfile.mkdtemp(prefix="timbrel-scale-"))
-    make_audio(tmp / "train", 4, 30.0)
-    models = {}
-    for n_hidden in HIDDEN:
-        overrides = [s for s in SETTINGS if not s.startswith("model.n_hidden")]
-        models[n_hidden] = make_model(tmp / f"m{n_hidden}", tmp / "train",
-                                      [*overrides, f"model.n_hidden={n_hidden}"])
-    make_audio(tmp / "parallel", PARALLEL_FILES, 60.0)
-    make_audio(tmp / "parallel_short", SHORT_FILES, 60.0)  # the same first files
-    speed = speedups(tmp / "parallel", models[1024], tmp / "par", args.rounds,
-                     tmp / "parallel_short")
-    series = growth(tmp, models)
-    floor = export_in_child()["peak_rss_mib"]
+    with scratch_dir("timbrel-scale-", keep=args.keep) as tmp:
+        make_audio(tmp / "train", 4, 30.0)
+        models = {}
+        for n_hidden in HIDDEN:
+            overrides = [s for s in SETTINGS if not s.startswith("model.n_hidden")]
+            models[n_hidden] = make_model(tmp / f"m{n_hidden}", tmp / "train",
+                                          [*overrides, f"model.n_hidden={n_hidden}"])
+        make_audio(tmp / "parallel", PARALLEL_FILES, 60.0)
+        make_audio(tmp / "parallel_short", SHORT_FILES, 60.0)  # the same first files
+        speed = speedups(tmp / "parallel", models[1024], tmp / "par", args.rounds,
+                         tmp / "parallel_short")
+        series = growth(tmp, models)
+        floor = export_in_child()["peak_rss_mib"]
 
-    def spread(points: list[dict], key: str) -> float:
-        values = [p[key] for p in points]
-        return max(values) / min(values)
+        def spread(points: list[dict], key: str) -> float:
+            values = [p[key] for p in points]
+            return max(values) / min(values)
 
-    fits = {
-        "files": linear_fit([p["audio_s"] / 60 for p in series["files"]],
-                            [p["wall_s"] for p in series["files"]]),
-        "length": linear_fit([p["audio_s"] / 60 for p in series["length"]],
-                             [p["wall_s"] for p in series["length"]]),
-        "n_hidden": linear_fit([p["x"] for p in series["n_hidden"]],
-                               [p["wall_s"] for p in series["n_hidden"]]),
-    }
+        fits = {
+            "files": linear_fit([p["audio_s"] / 60 for p in series["files"]],
+                                [p["wall_s"] for p in series["files"]]),
+            "length": linear_fit([p["audio_s"] / 60 for p in series["length"]],
+                                 [p["wall_s"] for p in series["length"]]),
+            "n_hidden": linear_fit([p["x"] for p in series["n_hidden"]],
+                                   [p["wall_s"] for p in series["n_hidden"]]),
+        }
 
-    result = {
-        "speedup": speed, "target_two_workers": TARGET_TWO_WORKERS,
-        "two_workers_met": speed["two_workers_speedup"] >= TARGET_TWO_WORKERS,
-        "growth": series, "import_only_rss_mib": round(floor, 1),
-        # wall = fixed + slope * size: R^2 near 1 means linear growth
-        "linear_fits": fits,
-        "peak_rss_spread_files": round(spread(series["files"], "peak_rss_mib"), 2),
-        "peak_rss_spread_length": round(spread(series["length"], "peak_rss_mib"), 2),
-        # flat memory: the longest file needs no more than one half as long
-        "peak_rss_last_doubling_length": round(series["length"][-1]["peak_rss_mib"]
-                                               / series["length"][-2]["peak_rss_mib"], 3),
-    }
-    print(f"scale: 2 workers {speed['two_workers_speedup']:.2f}x one on "
-          f"{PARALLEL_FILES} min of audio (target >= {TARGET_TWO_WORKERS}x, "
-          f"{'met' if result['two_workers_met'] else 'MISSED'}), "
-          f"{speed['two_workers_speedup_short']}x on its first {SHORT_FILES} min; "
-          f"Dask LocalCluster, 2 workers {speed['dask_speedup']}x one (cluster start-up "
-          f"{speed['dask_cluster_startup_s']} s, not counted); the machine's own 2-process "
-          f"speed-up on pure matrix products: {speed['machine_reference_speedup']}x; "
-          f"median of {args.rounds} rounds")
-    for name, points in series.items():
-        print(f"  against {name}: " + ", ".join(
-            f"{p['x']:g}: {p['seconds_per_audio_minute']:.3f} s/audio-min "
-            f"{p['peak_rss_mib']:.0f} MiB" for p in points))
-    for name, fit in fits.items():
-        unit = "hidden unit" if name == "n_hidden" else "audio minute"
-        print(f"  linear fit against {name}: {fit['fixed']:.2f} s fixed + {fit['slope']:.4f} s "
-              f"per {unit}, R^2 {fit['r2']}")
-    print(f"  peak RSS largest/smallest: files {result['peak_rss_spread_files']}x, length "
-          f"{result['peak_rss_spread_length']}x; {LENGTHS[-1]:.0f} s over {LENGTHS[-2]:.0f} s: "
-          f"{result['peak_rss_last_doubling_length']}x (it rises until a clip fills a row "
-          f"group, then stays flat; a process that only imports the export stage: "
-          f"{floor:.0f} MiB)")
-    if draw(series, speed, args.chart):
-        result["chart"] = str(args.chart)
-        print(f"  chart: {args.chart}")
-    if args.json:
-        args.json.write_text(json.dumps(result, indent=1))
-    return result
+        result = {
+            "speedup": speed, "target_two_workers": TARGET_TWO_WORKERS,
+            "two_workers_met": speed["two_workers_speedup"] >= TARGET_TWO_WORKERS,
+            "growth": series, "import_only_rss_mib": round(floor, 1),
+            # wall = fixed + slope * size: R^2 near 1 means linear growth
+            "linear_fits": fits,
+            "peak_rss_spread_files": round(spread(series["files"], "peak_rss_mib"), 2),
+            "peak_rss_spread_length": round(spread(series["length"], "peak_rss_mib"), 2),
+            # flat memory: the longest file needs no more than one half as long
+            "peak_rss_last_doubling_length": round(series["length"][-1]["peak_rss_mib"]
+                                                   / series["length"][-2]["peak_rss_mib"], 3),
+        }
+        print(f"scale: 2 workers {speed['two_workers_speedup']:.2f}x one on "
+              f"{PARALLEL_FILES} min of audio (target >= {TARGET_TWO_WORKERS}x, "
+              f"{'met' if result['two_workers_met'] else 'MISSED'}), "
+              f"{speed['two_workers_speedup_short']}x on its first {SHORT_FILES} min; "
+              f"Dask LocalCluster, 2 workers {speed['dask_speedup']}x one (cluster start-up "
+              f"{speed['dask_cluster_startup_s']} s, not counted); the machine's own 2-process "
+              f"speed-up on pure matrix products: {speed['machine_reference_speedup']}x; "
+              f"median of {args.rounds} rounds")
+        for name, points in series.items():
+            print(f"  against {name}: " + ", ".join(
+                f"{p['x']:g}: {p['seconds_per_audio_minute']:.3f} s/audio-min "
+                f"{p['peak_rss_mib']:.0f} MiB" for p in points))
+        for name, fit in fits.items():
+            unit = "hidden unit" if name == "n_hidden" else "audio minute"
+            print(f"  linear fit against {name}: {fit['fixed']:.2f} s fixed + {fit['slope']:.4f} s "
+                  f"per {unit}, R^2 {fit['r2']}")
+        print(f"  peak RSS largest/smallest: files {result['peak_rss_spread_files']}x, length "
+              f"{result['peak_rss_spread_length']}x; {LENGTHS[-1]:.0f} s over {LENGTHS[-2]:.0f} s: "
+              f"{result['peak_rss_last_doubling_length']}x (it rises until a clip fills a row "
+              f"group, then stays flat; a process that only imports the export stage: "
+              f"{floor:.0f} MiB)")
+        if draw(series, speed, args.chart):
+            result["chart"] = str(args.chart)
+            print(f"  chart: {args.chart}")
+        if args.json:
+            args.json.write_text(json.dumps(result, indent=1))
+        return result
 
 
 if __name__ == "__main__":
