@@ -72,6 +72,16 @@ def make_audio(folder: Path, n_files: int, file_seconds: float = FILE_SECONDS,
     return paths
 
 
+def link_first(paths: list[Path], n_files: int, folder: Path) -> list[Path]:
+    """The first ``n_files`` of ``paths`` hard-linked into ``folder``: the very same audio,
+    in a folder of its own, for an export of a shorter run."""
+    folder.mkdir(parents=True, exist_ok=True)
+    links = [folder / p.name for p in paths[:n_files]]
+    for path, link in zip(paths[:n_files], links, strict=True):
+        os.link(path, link)
+    return links
+
+
 def make_model(root: Path, audio: Path, overrides: list[str] = SETTINGS) -> Path:
     """Train a one-epoch model on ``audio`` with the given settings; its path."""
     from timbrel.cache import build_cache
@@ -219,8 +229,8 @@ def main(argv: list[str] | None = None) -> dict:
         n_files = max(1, round(args.seconds / FILE_SECONDS))
         paths = make_audio(tmp / "audio", n_files)
         n_small = min(n_files - 1, round(args.small_seconds / FILE_SECONDS))
-        if n_small > 0:  # the same first files, in a folder of their own
-            make_audio(tmp / "audio_small", n_small)
+        if n_small > 0:
+            link_first(paths, n_small, tmp / "audio_small")
         path_44k = make_audio(tmp / "audio44k", 1, sr=44100)[0]
         model = make_model(tmp, tmp / "audio")
         audio_seconds = n_files * FILE_SECONDS
