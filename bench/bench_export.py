@@ -117,7 +117,7 @@ def stage_times(path: Path, path_44k: Path, model: Path, out: Path, rounds: int
     from timbrel.audio import read_blocks
     from timbrel.export import COMPRESSION, _frame_table, _write_options, frame_schema
     from timbrel.frontend import ContextStacker, FrontEnd
-    from timbrel.training import load_pipeline
+    from timbrel.pipeline import load_pipeline
 
     pipe = load_pipeline(model)
     fe = FrontEnd(pipe.config.frontend)
@@ -223,7 +223,7 @@ def main(argv: list[str] | None = None) -> dict:
     args = parser.parse_args(argv)
 
     from timbrel.frontend import ContextStacker
-    from timbrel.training import load_pipeline
+    from timbrel.pipeline import load_pipeline
 
     with scratch_dir("timbrel-bench-", keep=args.keep) as tmp:
         n_files = max(1, round(args.seconds / FILE_SECONDS))

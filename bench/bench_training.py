@@ -36,7 +36,8 @@ from pathlib import Path
 
 import numpy as np
 
-from timbrel.model import RBM, _standard_normal
+from timbrel.model import RBM
+from timbrel.model._kernels import standard_normal
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _timing import interleaved, median, median_ratio
@@ -133,8 +134,8 @@ def profile_parts(n_visible: int, n_hidden: int, n_batches: int, repeats: int
 
     def draws() -> None:
         for _ in range(n_batches):
-            _standard_normal(rng, hidden, hidden_scratch)  # rectified-unit noise
-            _standard_normal(rng, visible, visible_scratch)  # Gaussian visible noise
+            standard_normal(rng, hidden, hidden_scratch)  # rectified-unit noise
+            standard_normal(rng, visible, visible_scratch)  # Gaussian visible noise
 
     def updates() -> None:
         for _ in range(n_batches):

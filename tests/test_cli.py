@@ -130,7 +130,7 @@ def test_fit_inspect_export_probe_chain(tmp_path):
     sets = ["--set", "frontend.n_mels=12", "--set", "frontend.context=1"]
     assert runner.invoke(app, ["frames", str(tmp_path / "m.csv"), "--out", str(cache), "-q",
                                "-j", "1", *sets]).exit_code == 0
-    result = runner.invoke(app, ["fit", str(cache), "--out", str(model), "--hidden", "8",
+    result = runner.invoke(app, ["fit", str(cache), "--out", str(model), "--n-hidden", "8",
                                  "--epochs", "2", "--seed", "1", "-q"])
     assert result.exit_code == 0, result.output
     assert "trained 2 epochs" in result.output

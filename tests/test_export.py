@@ -23,7 +23,8 @@ from timbrel.cache import build_cache
 from timbrel.config import load_config
 from timbrel.export import export
 from timbrel.frontend import FrontEnd
-from timbrel.training import load_pipeline, train
+from timbrel.pipeline import load_pipeline
+from timbrel.training import train
 
 N_HIDDEN = 20
 

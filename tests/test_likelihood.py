@@ -28,7 +28,6 @@ from timbrel.frontend import stack_context
 from timbrel.likelihood import (
     EXACT_MAX_HIDDEN,
     _annealing_path,
-    _stepped_log_partial,
     ais_log_partition,
     log_partition,
     relu_partition_bound,
@@ -36,7 +35,8 @@ from timbrel.likelihood import (
     temperature_schedule,
 )
 from timbrel.model import RBM
-from timbrel.training import _split_clips, load_pipeline
+from timbrel.pipeline import load_pipeline
+from timbrel.windows import split_clips
 
 runner = CliRunner()
 
@@ -92,17 +92,6 @@ def test_schedule_runs_from_zero_to_one_and_is_denser_near_the_model():
     assert betas[100] == pytest.approx(0.5) and betas[500] == pytest.approx(0.9)
     with pytest.raises(ParameterError):
         temperature_schedule(0)
-
-
-@pytest.mark.parametrize("n_copies", [2, 7, 34, 120])
-def test_stepped_partition_sum_matches_logaddexp(n_copies, rng_seed=4):
-    # reference: the definition, K calls of numpy.logaddexp(0, x − k + ½)
-    rng = np.random.default_rng(rng_seed)
-    x = np.concatenate([rng.normal(0.0, 25.0, 4000), [-1e3, 1e3, 0.0, 0.5, 1.5, -0.5,
-                                                       n_copies - 0.5, n_copies + 0.5]])
-    expected = sum(np.logaddexp(0.0, x - k + 0.5) for k in range(1, n_copies + 1))
-    got = _stepped_log_partial(x.reshape(1, -1), n_copies).ravel()
-    np.testing.assert_allclose(got, expected, rtol=1e-14, atol=1e-11)
 
 
 # ------------------------------------------------------------------ outside reference: scipy
@@ -212,6 +201,19 @@ def test_ais_with_binary_visibles_matches_enumeration():
     exact = rbm.exact_log_partition()
     estimate = ais_log_partition(rbm, visible_mean=np.full(6, 0.4), n_chains=200,
                                  n_temperatures=1000, seed=1)
+    assert abs(estimate.log_z - exact) < 0.1
+
+
+def test_ais_of_one_copy_stepped_units_matches_the_shifted_binary_enumeration():
+    # Source: algebra: a stepped unit with one copy is a binary unit with its bias moved
+    # by −½, so its log Z is the enumerated log Z of that binary model.
+    stepped = _tiny(4, 8, weight_scale=1.0, seed=7, hidden="stepped", n_copies=1)
+    binary = _tiny(4, 8, weight_scale=1.0, seed=7)
+    binary.hidden_bias_ = stepped.hidden_bias_ - np.float32(0.5)
+    exact = binary.exact_log_partition()
+    mean, var = _model_moments(binary)
+    estimate = ais_log_partition(stepped, visible_mean=mean, visible_var=var, n_chains=200,
+                                 n_temperatures=1000, seed=3)
     assert abs(estimate.log_z - exact) < 0.1
 
 
@@ -347,8 +349,8 @@ def small_cache(tmp_path_factory):
 @pytest.fixture(scope="module")
 def binary_model(small_cache):
     model = small_cache.parent / "binary.npz"
-    result = runner.invoke(app, ["fit", str(small_cache), "--out", str(model), "--hidden", "6",
-                                 "--units", "binary", "--epochs", "2", "--seed", "1", "-q"])
+    result = runner.invoke(app, ["fit", str(small_cache), "--out", str(model), "--n-hidden", "6",
+                                 "--hidden", "binary", "--epochs", "2", "--seed", "1", "-q"])
     assert result.exit_code == 0, result.output
     return model
 
@@ -363,7 +365,7 @@ def test_score_command_exact_on_the_trainers_windows(small_cache, binary_model):
     assert report["log_z"] == pytest.approx(pipe.rbm.exact_log_partition(), abs=1e-9)
     # the windows are the trainer's: its clip split, its standardisation, one per frame
     cache = FrameCache.open(small_cache)
-    train_clips, val_clips = _split_clips(len(cache),
+    train_clips, val_clips = split_clips(len(cache),
                                           pipe.config.training.validation_fraction, seed=1)
     sets = {s["name"]: s for s in report["sets"]}
     for name, clips in (("train", train_clips), ("validation", val_clips)):
@@ -384,16 +386,16 @@ def test_score_command_exact_on_the_trainers_windows(small_cache, binary_model):
 
 def test_score_command_runs_ais_for_rectified_units(small_cache):
     model = small_cache.parent / "relu.npz"
-    assert runner.invoke(app, ["fit", str(small_cache), "--out", str(model), "--hidden", "5",
+    assert runner.invoke(app, ["fit", str(small_cache), "--out", str(model), "--n-hidden", "5",
                                "--epochs", "1", "--seed", "2", "-q"]).exit_code == 0
-    result = runner.invoke(app, ["score", str(model), str(small_cache), "--runs", "8",
-                                 "--temperatures", "40", "--max-frames", "50", "-q"])
+    result = runner.invoke(app, ["score", str(model), str(small_cache), "--chains", "8",
+                                 "--temperatures", "40", "--max-windows", "50", "-q"])
     assert result.exit_code == 0, result.output
     assert "AIS, 8 chains x 40 temperatures" in result.output
     assert "annealed as stepped units with" in result.output
     assert "the rectified model's own Z is" in result.output
-    report = json.loads(runner.invoke(app, ["score", str(model), str(small_cache), "--runs",
-                                            "8", "--temperatures", "40", "--max-frames", "50",
+    report = json.loads(runner.invoke(app, ["score", str(model), str(small_cache), "--chains",
+                                            "8", "--temperatures", "40", "--max-windows", "50",
                                             "--json"]).output)
     assert all(s["n_windows"] <= 50 for s in report["sets"])
     assert all(math.isfinite(s["log_likelihood"]) for s in report["sets"])
@@ -405,7 +407,7 @@ def test_score_errors_are_one_line(small_cache, tmp_path, binary_model):
     assert result.exit_code == 1 and result.output.startswith("timbrel: error:")
     result = runner.invoke(app, ["score", str(binary_model), str(tmp_path / "nowhere")])
     assert result.exit_code == 1 and "timbrel: error:" in result.output
-    assert runner.invoke(app, ["score", str(binary_model), str(small_cache), "--runs",
+    assert runner.invoke(app, ["score", str(binary_model), str(small_cache), "--chains",
                                "1"]).exit_code == 2
 
 

@@ -18,6 +18,7 @@ from timbrel import ParameterError, TimbrelError
 from timbrel.cache import build_cache
 from timbrel.config import FrontEndConfig, load_config
 from timbrel.frontend import stack_context
+from timbrel.pipeline import describe_model, load_pipeline
 from timbrel.plots import (
     CLIP_FIGSIZE,
     CURVES_FIGSIZE,
@@ -34,7 +35,7 @@ from timbrel.plots import (
     receptive_field,
     receptive_fields_figsize,
 )
-from timbrel.training import describe_model, load_pipeline, train
+from timbrel.training import train
 
 matplotlib_image = pytest.importorskip("matplotlib.image")
 
@@ -305,7 +306,7 @@ def test_sigma_figure_plots_the_model_sigma_per_band(model_file):
 def test_training_curves_plot_the_stored_history(model_file):
     from timbrel.plots import _curves_figure
 
-    history = load_pipeline(model_file).metadata["history"]
+    history = load_pipeline(model_file).history
     fig = _curves_figure(history, dpi=50, name="m")
     lines = {ln.get_label(): ln for ax in fig.axes for ln in ax.lines}
     validation = lines["validation, end of epoch (mean-field)"]

@@ -13,15 +13,9 @@ from timbrel import ConfigError, DivergenceError, ModelFileError
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
 from timbrel.frontend import stack_context
-from timbrel.training import (
-    WindowBatches,
-    _split_clips,
-    checkpoint_path,
-    describe_model,
-    history_path,
-    load_pipeline,
-    train,
-)
+from timbrel.pipeline import describe_model, load_pipeline
+from timbrel.training import checkpoint_path, history_path, train
+from timbrel.windows import WindowBatches, split_clips
 
 
 @pytest.fixture(scope="module")
@@ -54,7 +48,7 @@ def _config(**model):
 
 
 def test_validation_holds_out_whole_clips():
-    train_clips, val_clips = _split_clips(20, 0.25, seed=1)
+    train_clips, val_clips = split_clips(20, 0.25, seed=1)
     assert len(val_clips) == 5
     assert set(train_clips).isdisjoint(val_clips)
     assert sorted([*train_clips, *val_clips]) == list(range(20))

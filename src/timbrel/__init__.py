@@ -33,6 +33,7 @@ from ._errors import (
 if TYPE_CHECKING:
     from .config import Config, FrontEndConfig, TrainingConfig, load_config
     from .frontend import BandStats, FrontEnd, mel_filter_bank, stack_context
+    from .model import RBM
 
 #: public name -> the stage module that defines it, imported on first access
 _LAZY = {
@@ -40,6 +41,7 @@ _LAZY = {
     "load_config": "config",
     "BandStats": "frontend", "FrontEnd": "frontend", "mel_filter_bank": "frontend",
     "stack_context": "frontend",
+    "RBM": "model",
 }
 
 
@@ -57,6 +59,7 @@ def __dir__() -> list[str]:
 
 
 __all__ = [
+    "RBM",
     "AudioReadError",
     "BandStats",
     "CacheError",

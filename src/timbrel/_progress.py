@@ -17,12 +17,9 @@ class _Silent:
     def advance(self, *args: Any, **kwargs: Any) -> None:
         pass
 
-    def log(self, *args: Any, **kwargs: Any) -> None:
-        pass
-
 
 @contextlib.contextmanager
-def progress_bar(enabled: bool, *, rate_field: str = "") -> Iterator[Any]:
+def progress_bar(enabled: bool) -> Iterator[Any]:
     """A rich ``Progress`` (bar, counts, elapsed, remaining, a free text field), or a
     silent stand-in.
 

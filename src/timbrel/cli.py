@@ -136,9 +136,9 @@ def fit_command(
     out: Annotated[Path, typer.Option("--out", "-o", help="Model file to write (.npz).")],
     config: ConfigOption = None,
     overrides: SetOption = None,
-    hidden: Annotated[int | None, typer.Option("--hidden", min=1,
-                                               help="Number of hidden units.")] = None,
-    units: Annotated[Units | None, typer.Option("--units", help="Hidden-unit kind.")] = None,
+    n_hidden: Annotated[int | None, typer.Option("--n-hidden", min=1,
+                                                 help="Number of hidden units.")] = None,
+    hidden: Annotated[Units | None, typer.Option("--hidden", help="Hidden-unit kind.")] = None,
     epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Training epochs.")] = None,
     seed: Annotated[int | None, typer.Option("--seed", help="Random seed.")] = None,
     resume: Annotated[bool, typer.Option(
@@ -146,19 +146,15 @@ def fit_command(
     quiet: QuietOption = False,
 ) -> None:
     """Train an RBM on a frame cache and write one model file."""
-    from .cache import FrameCache
     from .config import load_config
     from .training import train
 
-    extra = [*(overrides or ())]
-    for key, value in (("n_hidden", hidden), ("hidden", units.value if units else None),
-                       ("epochs", epochs), ("seed", seed)):
-        if value is not None:
-            extra.append(f"model.{key}={value!r}" if isinstance(value, str)
-                         else f"model.{key}={value}")
-    base = load_config(config) if config else FrameCache.open(cache).config
-    cfg = base.with_overrides(extra)
-    result = train(cache, out, config=cfg, resume=resume, progress=not quiet, log=_err)
+    model = {"n_hidden": n_hidden, "hidden": hidden.value if hidden else None,
+             "epochs": epochs, "seed": seed}
+    result = train(cache, out, config=load_config(config) if config else None,
+                   overrides=overrides or (),
+                   model={k: v for k, v in model.items() if v is not None},
+                   resume=resume, progress=not quiet, log=_err)
     typer.echo(result.line())
     typer.echo(f"model: {result.model_path}")
     typer.echo(f"history: {result.history_path}")
@@ -174,43 +170,11 @@ def inspect_command(
     """Summarise a model file: sizes, unit kinds, sigma per band, training figures."""
     import json
 
-    from .training import describe_model
+    from .pipeline import describe_text
+    from .plots import inspect_model
 
-    summary = describe_model(model)
-    if plots is not None:
-        from .plots import draw_model
-
-        summary["plots"] = [str(p) for p in draw_model(model, plots)]
-    if as_json:
-        typer.echo(json.dumps(summary, indent=1))
-        return
-    typer.echo(_describe_text(summary))
-
-
-def _describe_text(s: dict) -> str:
-    lay = s["layout"]
-    last = s.get("last_epoch") or {}
-    lines = [
-        f"model      {s['path']}  (checksum {s['checksum'][:16]})",
-        f"units      {s['n_visible']} {s['visible']} visible = {lay['positions']} frames x "
-        f"{lay['bands']} bands (context {lay['context']}), {s['n_hidden']} {s['hidden']} hidden",
-        f"training   {s['epochs']} epochs on {s['training'].get('n_train_clips', '?')} clips "
-        f"({s['training'].get('n_validation_clips', '?')} held out), "
-        f"{s['training'].get('n_frames', '?')} frames",
-    ]
-    if last:
-        lines.append(f"last epoch recon {last.get('recon_error', float('nan')):.4f} train, "
-                     f"{last.get('val_recon_error') or float('nan'):.4f} validation; "
-                     f"free-energy gap {last.get('free_energy_gap') or float('nan'):+.3f}; "
-                     f"dead units {last.get('dead_fraction', 0):.0%}")
-    lines.append("sigma per band (standardised units; 1 = no spread explained):")
-    for row in s["sigma_per_band"]:
-        bar = "#" * max(1, round(40 * min(row["sigma"], 1.0)))
-        lines.append(f"  {row['band']:3d} {row['centre_hz']:8.0f} Hz  {row['sigma']:.3f}  {bar}")
-    if s.get("plots"):
-        lines.append("pictures:")
-        lines.extend(f"  {p}" for p in s["plots"])
-    return "\n".join(lines)
+    summary = inspect_model(model, plots)
+    typer.echo(json.dumps(summary, indent=1) if as_json else describe_text(summary))
 
 
 @app.command("export")
@@ -295,13 +259,14 @@ def probe_command(
 def score_command(
     model: Annotated[Path, typer.Argument(help="Model file from `timbrel fit`.")],
     cache: Annotated[Path, typer.Argument(help="Frame cache to score (e.g. the training one).")],
-    runs: Annotated[int, typer.Option("--runs", min=2, help="AIS chains (independent runs).")
-                    ] = 100,
+    chains: Annotated[int, typer.Option("--chains", min=2,
+                                        help="AIS chains (independent runs).")] = 100,
     temperatures: Annotated[int, typer.Option(
         "--temperatures", min=1, help="AIS intermediate distributions.")] = 1000,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the AIS chains.")] = 0,
-    max_frames: Annotated[int, typer.Option(
-        "--max-frames", min=0, help="Frames scored per set at most, drawn evenly; 0 = all.")
+    max_windows: Annotated[int, typer.Option(
+        "--max-windows", min=0,
+        help="Context windows (one per frame) scored per set at most, drawn evenly; 0 = all.")
     ] = 0,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
     quiet: QuietOption = False,
@@ -311,8 +276,8 @@ def score_command(
 
     from .likelihood import score
 
-    result = score(model, cache, n_chains=runs, n_temperatures=temperatures, seed=seed,
-                   max_windows=max_frames, progress=not quiet and not as_json)
+    result = score(model, cache, n_chains=chains, n_temperatures=temperatures, seed=seed,
+                   max_windows=max_windows, progress=not quiet and not as_json)
     typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
 
 

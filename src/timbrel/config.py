@@ -160,6 +160,14 @@ class FrontEndConfig:
         """Length of one visible vector: ``n_positions * n_mels``."""
         return self.n_positions * self.n_mels
 
+    def frame_differences(self, other: FrontEndConfig, *, ours: str = "config",
+                          theirs: str = "cache") -> list[str]:
+        """The frame settings (all but ``context``) in which ``other`` differs, each as
+        ``"name: OURS value, THEIRS value"``; empty when both make the same frames."""
+        return [f"{f.name}: {ours} {getattr(self, f.name)!r}, {theirs} {getattr(other, f.name)!r}"
+                for f in dataclasses.fields(self)
+                if f.name != "context" and getattr(self, f.name) != getattr(other, f.name)]
+
     def frame_key(self) -> str:
         """Hash of every key that changes the frames (context does not)."""
         d = dataclasses.asdict(self)
@@ -230,10 +238,6 @@ class Config:
             table, key, value = parse_override(text)
             data.setdefault(table, {})[key] = value
         return Config.from_dict(data, source="override")
-
-    def digest(self) -> str:
-        """Short hash of the whole configuration."""
-        return _digest(self.to_dict())
 
 
 def parse_override(text: str) -> tuple[str, str, Any]:

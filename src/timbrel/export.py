@@ -53,7 +53,7 @@ from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
 from .config import Config
 from .frontend import ContextStacker, FrontEnd
-from .training import FeaturePipeline, load_pipeline
+from .pipeline import FeaturePipeline, load_pipeline
 
 __all__ = ["LAYOUTS", "POOLS", "ExportSummary", "clip_schema", "export", "frame_schema"]
 

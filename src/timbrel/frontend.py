@@ -20,9 +20,11 @@ __all__ = [
     "ContextStacker",
     "FrontEnd",
     "hz_to_mel",
+    "mel_band_edges",
     "mel_filter_bank",
     "mel_to_hz",
     "stack_context",
+    "standardise",
 ]
 
 
@@ -67,6 +69,26 @@ def mel_to_hz(mels: np.ndarray | float, *, scale: str = "slaney") -> np.ndarray:
         raise ParameterError(f"scale = {scale!r} is not 'slaney' or 'htk'")
     f_sp, min_log_hz, min_log_mel, logstep = _SLANEY
     return np.where(m >= min_log_mel, min_log_hz * np.exp(logstep * (m - min_log_mel)), f_sp * m)
+
+
+def mel_band_edges(*, n_mels: int, fmin: float, fmax: float, scale: str = "slaney"
+                   ) -> np.ndarray:
+    """Edges of ``n_mels`` triangular bands, evenly spaced in mels from ``fmin`` to ``fmax``.
+
+    Band ``b`` rises from ``edges[b]``, peaks at ``edges[b + 1]`` and falls to
+    ``edges[b + 2]``.
+
+    Returns
+    -------
+    np.ndarray, shape (n_mels + 2,), float64, Hz
+
+    Examples
+    --------
+    >>> mel_band_edges(n_mels=2, fmin=0.0, fmax=8000.0, scale="htk").round(1)
+    array([   0. ,  921.5, 3055.9, 8000. ])
+    """
+    return mel_to_hz(np.linspace(hz_to_mel(fmin, scale=scale), hz_to_mel(fmax, scale=scale),
+                                 n_mels + 2), scale=scale)
 
 
 @functools.lru_cache(maxsize=32)
@@ -116,8 +138,7 @@ def mel_filter_bank(
     if norm not in ("slaney", "none"):
         raise ParameterError(f"norm = {norm!r} is not 'slaney' or 'none'")
     fft_freqs = np.arange(1 + n_fft // 2, dtype=np.float64) * sr / n_fft
-    edges = mel_to_hz(np.linspace(hz_to_mel(fmin, scale=scale), hz_to_mel(fmax, scale=scale),
-                                  n_mels + 2), scale=scale)
+    edges = mel_band_edges(n_mels=n_mels, fmin=fmin, fmax=fmax, scale=scale)
     widths = np.diff(edges)
     ramps = edges[:, None] - fft_freqs[None, :]
     rising = -ramps[:-2] / widths[:-1, None]
@@ -397,6 +418,31 @@ class ContextStacker:
         return rows
 
 
+def standardise(frames: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """``(frames - mean) / scale`` per band, in float32; the input is not modified.
+
+    Parameters
+    ----------
+    frames : np.ndarray, shape (n_frames, n_bands)
+    mean, scale : np.ndarray, shape (n_bands,)
+        Band statistics (see :class:`BandStats`); both are rounded to float32 first.
+
+    Returns
+    -------
+    np.ndarray, shape (n_frames, n_bands), float32
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> standardise(np.array([[1.0, 4.0]]), np.array([1.0, 2.0]), np.array([1.0, 2.0]))
+    array([[0., 1.]], dtype=float32)
+    """
+    out = np.asarray(frames).astype(np.float32, copy=True)
+    out -= np.asarray(mean).astype(np.float32)
+    out /= np.asarray(scale).astype(np.float32)
+    return out
+
+
 class BandStats:
     """Streaming per-band mean and standard deviation, mergeable across workers.
 
@@ -474,11 +520,7 @@ class BandStats:
 
     def standardise(self, frames: np.ndarray) -> np.ndarray:
         """``(frames - mean) / scale`` as float32, shape unchanged (n_frames, n_bands)."""
-        frames = np.asarray(frames)
-        out = frames.astype(np.float32, copy=True)
-        out -= self.mean.astype(np.float32)
-        out /= self.scale.astype(np.float32)
-        return out
+        return standardise(frames, self.mean, self.scale)
 
     def to_dict(self) -> dict[str, object]:
         """JSON-able form."""

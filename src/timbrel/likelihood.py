@@ -83,21 +83,14 @@ from scipy.special import expit, logsumexp
 from ._errors import ParameterError
 from ._progress import progress_bar
 from .cache import FrameCache
-from .model import RBM
-from .training import (
-    WindowBatches,
-    check_config_against_cache,
-    load_pipeline,
-    split_seed,
-    window_sets,
-)
+from .model import EXACT_MAX_HIDDEN, RBM
+from .model.units import BinaryHidden, HiddenUnits, SteppedHidden
+from .pipeline import load_pipeline
+from .windows import WindowBatches, check_config_against_cache, split_seed, window_sets
 
 __all__ = ["DEFAULT_CHAINS", "DEFAULT_TEMPERATURES", "EXACT_MAX_HIDDEN", "RELU_COPY_MARGIN",
            "PartitionEstimate", "ScoreResult", "SetScore", "ais_log_partition",
            "log_partition", "relu_partition_bound", "score", "temperature_schedule"]
-
-EXACT_MAX_HIDDEN = 20
-"""Binary-hidden models with at most this many hidden units get log Z by enumeration."""
 
 DEFAULT_CHAINS = 100
 """AIS chains (independent runs) by default."""
@@ -178,39 +171,6 @@ class PartitionEstimate:
     effective_chains: float = 0.0
 
 
-_EXP_STEPS = np.exp(-np.arange(37.0))
-
-
-def _stepped_log_partial(x: np.ndarray, n_copies: int) -> np.ndarray:
-    """Σₖ₌₁ᴷ softplus(x − k + ½) per element, float64, without a logarithm per copy.
-
-    With s = x + ½ and m = clip(⌊s⌋, 0, K) copies of non-negative input, the sum is
-    Σₖ≤ₘ (s − k) + Σⱼ₌₀^{m−1} log1p(e^{−(s−m)−j}) + Σⱼ₌₀^{K−m−1} log1p(e^{−(m+1−s)−j}),
-    since softplus(t) = max(t, 0) + log1p(e^{−|t|}).  Each log1p sum is the log of a
-    product of factors in (1, 2]; factors with j ≥ 37 equal 1 in float64 (e^{−37} < 2⁻⁵³)
-    and are left out.  About twice as fast as K calls of ``np.logaddexp``; the tests check
-    it against them.
-    """
-    s = x + 0.5
-    m = np.clip(np.floor(s), 0, n_copies)
-    total = m * s - 0.5 * m * (m + 1)
-    n_below = n_copies - m
-    for count, distance in ((m, s - m), (n_below, m + 1 - s)):
-        n_terms = min(int(count.max(initial=0)), len(_EXP_STEPS))
-        if n_terms == 0:
-            continue
-        base = np.exp(-np.maximum(distance, 0.0))
-        product = np.ones_like(x)
-        term = np.empty_like(x)
-        for j in range(n_terms):
-            np.multiply(base, _EXP_STEPS[j], out=term)
-            term *= count > j
-            term += 1.0
-            product *= term
-        total += np.log(product)
-    return total
-
-
 @dataclasses.dataclass(frozen=True)
 class _Path:
     """The model's parameters in float64 and the base rate, as the annealing uses them."""
@@ -222,15 +182,13 @@ class _Path:
     inv_var: np.ndarray         # (V,) 1/σ² (ones for binary)
     hidden_bias: np.ndarray     # (H,)
     offsets: np.ndarray         # (K,)
+    units: HiddenUnits          # the hidden units in their annealed (binary copies) form
     base_mean: np.ndarray       # (V,) μ (Gaussian) or b_A (binary)
     base_inv_var: np.ndarray    # (V,) 1/s² (Gaussian; ones for binary)
 
     def hidden_term(self, a: np.ndarray, beta: float) -> np.ndarray:
         """Σⱼₖ softplus(cⱼ + oₖ + β aⱼ) per row of a (n, H)."""
-        x = self.hidden_bias + beta * a
-        if len(self.offsets) == 1:
-            return np.logaddexp(0.0, x).sum(axis=1)
-        return _stepped_log_partial(x, len(self.offsets)).sum(axis=1)
+        return self.units.log_partial(self.hidden_bias + beta * a).sum(axis=1)
 
     def visible_terms(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(−V_A(v), −V_B(v)) per row."""
@@ -296,8 +254,9 @@ def _annealing_path(rbm: RBM, visible_mean: Any, visible_var: Any, copies: int |
     else:
         p = np.clip(mean, _MARGINAL_CLIP, 1 - _MARGINAL_CLIP)
         base_mean, base_inv_var = np.log(p / (1 - p)), np.ones(n_visible)
+    units: HiddenUnits
     if rbm.hidden == "binary":
-        offsets = np.zeros(1)
+        offsets, units = np.zeros(1), BinaryHidden()
     else:
         n = rbm.n_copies if rbm.hidden == "stepped" else copies
         if n is None:
@@ -308,13 +267,13 @@ def _annealing_path(rbm: RBM, visible_mean: Any, visible_var: Any, copies: int |
                                  f"got copies={copies}")
         if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
             raise ParameterError(f"copies must be an integer ≥ 1; got {n!r}")
-        offsets = 0.5 - np.arange(1, int(n) + 1, dtype=np.float64)
+        offsets, units = 0.5 - np.arange(1, int(n) + 1, dtype=np.float64), SteppedHidden(n)
     weights = np.asarray(rbm.weights_, np.float64)
     inv_var = (1.0 / np.square(np.asarray(rbm.sigma_, np.float64)) if gaussian
                else np.ones(n_visible))
     return _Path(gaussian=gaussian, weights=weights, input_weights=weights * inv_var[:, None],
                  visible_bias=np.asarray(rbm.visible_bias_, np.float64), inv_var=inv_var,
-                 hidden_bias=np.asarray(rbm.hidden_bias_, np.float64), offsets=offsets,
+                 hidden_bias=np.asarray(rbm.hidden_bias_, np.float64), offsets=offsets, units=units,
                  base_mean=base_mean, base_inv_var=base_inv_var)
 
 

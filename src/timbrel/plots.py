@@ -26,14 +26,14 @@ import numpy as np
 
 from ._atomic import atomic_path
 from ._errors import ParameterError
-from .frontend import hz_to_mel, mel_to_hz
+from .frontend import hz_to_mel, mel_band_edges
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
     from matplotlib.figure import Figure
 
     from .config import FrontEndConfig
-    from .training import FeaturePipeline
+    from .pipeline import FeaturePipeline
 
 __all__ = [
     "CLIP_FIGSIZE",
@@ -48,6 +48,7 @@ __all__ = [
     "band_position",
     "draw_clip",
     "draw_model",
+    "inspect_model",
     "order_units",
     "receptive_field",
     "receptive_fields_figsize",
@@ -100,9 +101,8 @@ def band_centres(frontend: FrontEndConfig) -> np.ndarray:
         Hz, increasing.
     """
     fe = frontend
-    mels = np.linspace(hz_to_mel(fe.fmin, scale=fe.mel_scale),
-                       hz_to_mel(fe.upper_frequency, scale=fe.mel_scale), fe.n_mels + 2)
-    return mel_to_hz(mels, scale=fe.mel_scale)[1:-1]
+    return mel_band_edges(n_mels=fe.n_mels, fmin=fe.fmin, fmax=fe.upper_frequency,
+                          scale=fe.mel_scale)[1:-1]
 
 
 def band_position(hz: np.ndarray | float, frontend: FrontEndConfig) -> np.ndarray:
@@ -343,6 +343,8 @@ def draw_model(
     *,
     n_units: int = 16,
     dpi: float = 100,
+    pipe: FeaturePipeline | None = None,
+    summary: dict[str, Any] | None = None,
 ) -> list[Path]:
     """Draw what a trained model learned, as three PNG files.
 
@@ -361,8 +363,7 @@ def draw_model(
     ``training_curves.png``
         Per-epoch reconstruction error (train and validation), the validation-minus-
         training free-energy gap, mean hidden activity, the share of dead units, the σ
-        range and the learning-rate scale with roll-backs, from the model file's history
-        (the last 50 epochs are stored).
+        range and the learning-rate scale with roll-backs, from the model file's history.
 
     Parameters
     ----------
@@ -376,6 +377,10 @@ def draw_model(
     dpi : float, default 100
         Pixels per inch, in [10, 600]. Each PNG is ``int(figsize * dpi)`` pixels: see
         :func:`receptive_fields_figsize`, ``SIGMA_FIGSIZE`` and ``CURVES_FIGSIZE``.
+    pipe : FeaturePipeline, optional
+        The model file already loaded (default: loaded here).
+    summary : dict, optional
+        Its :func:`timbrel.pipeline.describe_model` summary (default: made here).
 
     Returns
     -------
@@ -394,10 +399,10 @@ def draw_model(
             1 <= n_units <= _MAX_UNITS):
         raise ParameterError(f"n_units = {n_units!r} must be an integer in [1, {_MAX_UNITS}]")
     dpi = _check_dpi(dpi)
-    from .training import describe_model, load_pipeline
+    from .pipeline import describe_model, load_pipeline
 
     model_path = Path(model_path)
-    pipe = load_pipeline(model_path)
+    pipe = load_pipeline(model_path) if pipe is None else pipe
     out_dir = Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
         raise ParameterError(f"{out_dir}: exists and is not a folder")
@@ -406,12 +411,38 @@ def draw_model(
     written = [
         _save(_receptive_fields_figure(pipe, int(n_units), dpi=dpi, name=name),
               out_dir / RECEPTIVE_FIELDS_FILE, title=f"receptive fields of {name}"),
-        _save(_sigma_figure(pipe, describe_model(model_path), dpi=dpi, name=name),
+        _save(_sigma_figure(pipe, summary or describe_model(model_path, pipe), dpi=dpi,
+                            name=name),
               out_dir / SIGMA_FILE, title=f"sigma per band of {name}"),
-        _save(_curves_figure(list(pipe.metadata.get("history", [])), dpi=dpi, name=name),
+        _save(_curves_figure(pipe.history, dpi=dpi, name=name),
               out_dir / TRAINING_CURVES_FILE, title=f"training curves of {name}"),
     ]
     return written
+
+
+def inspect_model(model_path: str | Path, plots: str | Path | None = None) -> dict[str, Any]:
+    """Summarise a model file and, with ``plots``, draw its pictures; the file is read once.
+
+    Parameters
+    ----------
+    model_path : str or Path
+    plots : str or Path, optional
+        Folder for the pictures of :func:`draw_model`.
+
+    Returns
+    -------
+    dict
+        :func:`timbrel.pipeline.describe_model`'s summary, with ``plots`` (the PNG paths as
+        strings) when pictures were drawn.
+    """
+    from .pipeline import describe_model, load_pipeline
+
+    pipe = load_pipeline(model_path)
+    summary = describe_model(model_path, pipe)
+    if plots is not None:
+        drawn = draw_model(model_path, plots, pipe=pipe, summary=summary)
+        summary["plots"] = [str(p) for p in drawn]
+    return summary
 
 
 def _filters(pipe: FeaturePipeline) -> np.ndarray:
@@ -650,7 +681,7 @@ def draw_clip(
     dpi = _check_dpi(dpi)
     from .audio import load
     from .frontend import FrontEnd
-    from .training import load_pipeline
+    from .pipeline import load_pipeline
 
     audio_path, out_file = Path(audio_path), Path(out_file)
     pipe = load_pipeline(model_path)

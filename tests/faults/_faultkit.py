@@ -18,7 +18,7 @@ from timbrel.cli import app
 
 #: Small settings so every run in the suite takes a fraction of a second.
 SETTINGS = ["--set", "frontend.n_mels=16", "--set", "frontend.context=1"]
-FIT_OPTIONS = ["--hidden", "8", "--epochs", "3", "--seed", "5"]
+FIT_OPTIONS = ["--n-hidden", "8", "--epochs", "3", "--seed", "5"]
 RUNNER = Path(__file__).with_name("_crash_runner.py")
 SR = 16000
 

@@ -108,7 +108,7 @@ def _same_model(path, ref) -> None:
         assert np.array_equal(getattr(ours.rbm, name), getattr(theirs.rbm, name)), name
     for name in ("band_mean", "band_scale"):
         assert np.array_equal(ours.arrays[name], theirs.arrays[name])
-    assert len(ours.metadata["history"]) == len(theirs.metadata["history"])
+    assert len(ours.rbm.history_) == len(theirs.rbm.history_)
     assert temporaries(path.parent) == []
 
 

@@ -13,7 +13,8 @@ import pytest
 from _faultkit import FIT_OPTIONS, SETTINGS, invoke, no_traceback, write_good_clips
 
 from timbrel import ModelFileError, TimbrelError
-from timbrel.model import _canonical_json, _content_digest, read_model_file
+from timbrel.model import read_model_file
+from timbrel.model._files import canonical_json, content_digest
 from timbrel.training import checkpoint_path
 
 
@@ -58,8 +59,8 @@ def _rewrite(src, dst, *, header_change=None, array_change=None, resign=True) ->
     if resign:
         header.pop("checksum")
         listed = header["param_arrays"] + [f"user.{n}" for n in header["user_arrays"]]
-        header["checksum"] = _content_digest([(n, arrays[n]) for n in listed], header)
-    arrays["header"] = np.frombuffer(_canonical_json(header).encode(), np.uint8)
+        header["checksum"] = content_digest([(n, arrays[n]) for n in listed], header)
+    arrays["header"] = np.frombuffer(canonical_json(header).encode(), np.uint8)
     with open(dst, "wb") as fh:
         np.savez(fh, **arrays)
 

@@ -29,7 +29,7 @@ from timbrel.model import RBM, read_model_file
 from timbrel.training import history_path
 
 SR = 16000
-STRESS = ["--hidden", "32", "--epochs", "15", "--seed", "1"]
+STRESS = ["--n-hidden", "32", "--epochs", "15", "--seed", "1"]
 X100 = ["--set", "model.learning_rate=0.1", "--set", "model.variance_learning_rate=0.01"]
 X1000 = ["--set", "model.learning_rate=1.0", "--set", "model.variance_learning_rate=0.1"]
 

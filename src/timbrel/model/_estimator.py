@@ -1,0 +1,1218 @@
+# ruff: noqa: RUF002  (docstrings and messages use math notation: σ, −, ×)
+"""The estimator: a restricted Boltzmann machine for real-valued frames, scikit-learn style.
+
+Energy, with σᵢ the *standard deviation* of visible unit i (Cho, Ilin & Raiko 2011)::
+
+    E(v, h) = Σᵢ (vᵢ − bᵢ)² / (2σᵢ²) − Σⱼ cⱼ hⱼ − Σᵢⱼ (vᵢ / σᵢ²) Wᵢⱼ hⱼ
+
+so the hidden input is ``xⱼ = cⱼ + Σᵢ Wᵢⱼ vᵢ / σᵢ²`` and ``p(vᵢ | h) = N(bᵢ + Σⱼ Wᵢⱼ hⱼ, σᵢ²)``.
+Binary visibles use ``E(v, h) = −b·v − c·h − vᵀWh``.
+
+References
+----------
+Nair, V. & Hinton, G. E. (2010). Rectified linear units improve restricted Boltzmann
+machines. ICML.
+Cho, K., Ilin, A. & Raiko, T. (2011). Improved learning of Gaussian-Bernoulli
+restricted Boltzmann machines. ICANN.
+Hinton, G. E. (2010). A practical guide to training restricted Boltzmann machines.
+UTML TR 2010-003.
+"""
+
+from __future__ import annotations
+
+import inspect
+import json
+import math
+import os
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .._errors import NotFittedError, ParameterError
+from ._files import (
+    canonical_json,
+    json_safe,
+    read_model_archive,
+    refuse,
+    write_model_archive,
+)
+from ._guard import guarded_epoch
+from ._kernels import F32
+from ._params import check_params, is_int
+from ._state import PARAMETER_NAMES, TrainingState
+from ._step import Phases, StepPlan, combine_phases, contrastive_step
+from .units import HiddenUnits, VisibleUnits, hidden_units, visible_units
+
+__all__ = ["EXACT_MAX_HIDDEN", "RBM", "ModelFile", "read_model_file"]
+
+EXACT_MAX_HIDDEN = 20
+"""Binary-hidden models with at most this many hidden units have log Z by enumeration."""
+
+_TRANSFORM_CHUNK = 8192
+
+
+def _as_float32_matrix(values: Any, *, name: str) -> np.ndarray:
+    """Validate and convert to a C-contiguous float32 (n, d) array; the input is not modified."""
+    if np.iscomplexobj(values):
+        raise ParameterError(f"{name} must be real-valued; got a complex array")
+    try:
+        with np.errstate(over="ignore"):  # overflow to inf is reported below
+            array = np.asarray(values, dtype=F32)
+    except (TypeError, ValueError) as exc:
+        raise ParameterError(f"{name} must be convertible to float32: {exc}") from None
+    if array.ndim != 2:
+        raise ParameterError(
+            f"{name} must be 2-D of shape (n_samples, n_features); got shape {array.shape}"
+        )
+    if array.shape[0] == 0 or array.shape[1] == 0:
+        raise ParameterError(f"{name} must hold at least one row and one column; got shape "
+                             f"{array.shape}")
+    finite = np.isfinite(array)
+    if not finite.all():
+        n_bad = int(array.size - np.count_nonzero(finite))
+        raise ParameterError(
+            f"{name} holds {n_bad} NaN or infinite value(s) (after conversion to float32, "
+            f"which overflows beyond ±3.4e38)"
+        )
+    return np.ascontiguousarray(array)
+
+
+@dataclass(frozen=True)
+class ModelFile:
+    """The contents of a model file, as returned by :func:`read_model_file`.
+
+    Attributes
+    ----------
+    rbm : RBM
+        The fitted estimator (its ``metadata_`` holds ``metadata``).
+    metadata : dict
+        The JSON metadata saved with the model (front-end config, training config, ...).
+    arrays : dict of str to ndarray
+        The extra arrays saved with the model (e.g. per-band mean and standard deviation).
+    checksum : str
+        Hex SHA-256 of the file's content, verified on reading.
+    """
+
+    rbm: RBM
+    metadata: dict[str, Any]
+    arrays: dict[str, np.ndarray]
+    checksum: str
+
+
+class RBM:
+    r"""Restricted Boltzmann machine with Gaussian (or binary) visibles, trained by CD-k.
+
+    ``__init__`` only stores the hyperparameters; they are validated by ``fit``,
+    ``partial_fit``, ``fit_epoch`` and ``initialize``.  The estimator models the
+    visible vectors exactly as given (no standardisation inside; that is the
+    pipeline's job), so ``sigma_floor``, ``sigma_ceiling`` and ``initial_sigma`` are in
+    the units of X.  float32 in, float32 out; float64 input is converted.
+
+    Parameters
+    ----------
+    n_hidden : int, default=1024
+        Number of hidden units, ≥ 1.  Many hidden units help (Nair & Hinton 2010).
+    hidden : {"relu", "binary", "stepped"}, default="relu"
+        Hidden unit kind.  ``"binary"``: logistic, mean sigmoid(x).  ``"stepped"``:
+        ``n_copies`` binary copies sharing weights and bias with offsets −0.5, −1.5, …;
+        mean Σₙ sigmoid(x − n + 0.5), sample the sum of the copies' Bernoulli draws.
+        ``"relu"``: noisy rectified unit (Nair & Hinton 2010), sample
+        max(0, x + ε) with ε ~ N(0, sigmoid(x)) (sigmoid(x) is the *variance*), mean
+        max(0, x); its free energy is the stepped one with infinitely many copies,
+        evaluated to within 1e-6 per unit (see ``RELU_WINDOW_COPIES``).
+    n_copies : int, default=10
+        Copies per stepped hidden unit, ≥ 1 (used only by ``hidden="stepped"``).
+    visible : {"gaussian", "binary"}, default="gaussian"
+        Visible unit kind.  Binary visibles (for stacking and reference checks) have
+        σ = 1, not learned.
+    learn_variance : bool, default=True
+        Learn the Gaussian visibles' variances (ignored for binary visibles).
+    tie_variance : {"band", "unit"}, default="band"
+        ``"band"``: one variance per mel band shared by all context positions (see
+        ``layout``); ``"unit"``: one variance per visible unit.
+    layout : tuple of (int, int) or None, default=None
+        ``(n_positions, n_bands)`` of a context window; visible index
+        ``position * n_bands + band``.  With None each column is its own band.
+    n_steps : int, default=1
+        Gibbs steps per update (CD-k), ≥ 1.
+    persistent : bool, default=False
+        Persistent CD: ``batch_size`` negative chains carried across minibatches.
+    learning_rate : float, default=1e-3
+        Step size for weights and biases, > 0.  Gaussian visibles need a small rate
+        (Hinton 2010 suggests 1–2 orders below the binary case); 0.01–0.1 suits binary
+        visibles.
+    variance_learning_rate : float, default=1e-4
+        Step size for the log-variances zᵢ = log σᵢ², ≥ 0.
+    initial_momentum, final_momentum : float, default=0.5, 0.9
+        Momentum before and from ``momentum_switch_epoch`` on, in [0, 1).
+    momentum_switch_epoch : int, default=5
+        Epoch index at which the final momentum starts, ≥ 0.
+    learning_rate_decay : float, default=0.5
+        Learning-rate schedule: epoch e (from 0) uses both learning rates divided by
+        1 + learning_rate_decay · e, ≥ 0 (0 keeps them constant).  Smaller late steps
+        (annealing the learning rate: common practice) let the weights settle once σ
+        has shrunk, which raises the curvature the steps meet.
+    weight_decay : float, default=1e-5
+        L2 penalty on the weights, ≥ 0: each update shrinks them as
+        ``W ← (1 − η·weight_decay) W`` (not accumulated in the momentum).  The factors of
+        successive updates are multiplied in float64 and applied together once they
+        differ from 1 by ``1e-5`` (and at the end of each epoch), since a single update's
+        factor is within float32's rounding of 1.
+    sparsity_target : float or None, default=None
+        Target mean hidden activation (> 0), or None for no sparsity cost.
+    sparsity_cost : float, default=0.1
+        Weight of the sparsity penalty, ≥ 0.  The penalty's derivative with respect to
+        each hidden input is taken as (q − p) (Hinton 2010, sec. 11), with q the running
+        mean activation; it reaches c, W and z through x.
+    sparsity_decay : float, default=0.95
+        Decay of the running mean activation q, in [0, 1).
+    batch_size : int, default=128
+        Rows per minibatch, ≥ 1; also the number of persistent chains.
+    epochs : int, default=20
+        Passes over the data made by ``fit``, ≥ 1.
+    sigma_floor, sigma_ceiling : float, default=0.05, 20.0
+        Bounds on the learned σ (units of X), 0 < floor < ceiling.  With standardised
+        bands σ lies below 1; the floor caps the gain 1/σ² at 400.
+    initial_sigma : float, default=1.0
+        Starting σ for every Gaussian visible, within the bounds.
+    weight_scale : float, default=0.01
+        Standard deviation of the initial weights, > 0 (Hinton 2010, sec. 8).
+    max_step : float, default=0.05
+        Limit on one minibatch's weight step, as a share of the weights' Frobenius
+        norm (at least that of the initial weights): a larger gradient is scaled down,
+        biases and log-variances with it (gradient-norm clipping, Pascanu, Mikolov &
+        Bengio 2013).  With rectified hiddens a single Gibbs step can amplify the
+        reconstruction when the loop gain Wᵀ diag(1/σ²) W nears 1, and one such
+        minibatch would otherwise throw the weights far away.  0 turns it off.
+        The epoch's count of limited steps is reported as ``limited_steps``.
+    divergence_factor : float, default=3.0
+        An epoch counts as diverged when its relative reconstruction error exceeds both
+        1 (worse than the minibatch mean) and this factor times the larger of the
+        previous epoch's and its own first minibatch's, > 1 (see :meth:`fit_epoch`).
+    max_rollbacks : int, default=5
+        Retries of one epoch after divergence (each halves all learning rates) before
+        :class:`DivergenceError`, ≥ 0.
+    warm_start : bool, default=False
+        Let ``fit`` continue from the current state instead of re-initialising.
+    seed : int or None, default=None
+        Seed of the ``np.random.Generator`` created when training starts.
+
+    Attributes
+    ----------
+    weights_ : ndarray of shape (n_visible, n_hidden), float32
+    visible_bias_ : ndarray of shape (n_visible,), float32
+    hidden_bias_ : ndarray of shape (n_hidden,), float32
+    sigma_ : ndarray of shape (n_visible,), float32
+        Visible standard deviations (read-only view; assign a new array to change).
+    history_ : list of dict
+        Per-epoch figures returned by :meth:`fit_epoch`.
+    n_features_in_ : int
+    n_epochs_ : int
+        Epochs completed.
+    learning_rate_scale_ : float
+        Factor on all learning rates, halved at each rollback.
+    metadata_ : dict
+        Metadata read from a model file (set by :meth:`load`).
+
+    Notes
+    -----
+    Learning ascends the log-likelihood with CD-k (:mod:`timbrel.model._step` holds the
+    gradient, :mod:`timbrel.model._update` the update rule, :mod:`timbrel.model._guard`
+    the guarded epoch); the unit kinds are the objects of :mod:`timbrel.model.units`.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from timbrel import RBM
+    >>> X = np.random.default_rng(0).standard_normal((256, 12)).astype(np.float32)
+    >>> rbm = RBM(n_hidden=16, epochs=2, seed=0).fit(X)
+    >>> rbm.transform(X[:3]).shape
+    (3, 16)
+    >>> rbm.sigma_.shape
+    (12,)
+    """
+
+    metadata_: dict[str, Any]  # set only by load/read_model_file, as documented above
+    _state: TrainingState | None  # optimiser state; see _training_state
+
+    def __init__(
+        self,
+        *,
+        n_hidden: int = 1024,
+        hidden: str = "relu",
+        n_copies: int = 10,
+        visible: str = "gaussian",
+        learn_variance: bool = True,
+        tie_variance: str = "band",
+        layout: tuple[int, int] | None = None,
+        n_steps: int = 1,
+        persistent: bool = False,
+        learning_rate: float = 1e-3,
+        variance_learning_rate: float = 1e-4,
+        initial_momentum: float = 0.5,
+        final_momentum: float = 0.9,
+        momentum_switch_epoch: int = 5,
+        learning_rate_decay: float = 0.5,
+        weight_decay: float = 1e-5,
+        sparsity_target: float | None = None,
+        sparsity_cost: float = 0.1,
+        sparsity_decay: float = 0.95,
+        batch_size: int = 128,
+        epochs: int = 20,
+        sigma_floor: float = 0.05,
+        sigma_ceiling: float = 20.0,
+        initial_sigma: float = 1.0,
+        weight_scale: float = 0.01,
+        max_step: float = 0.05,
+        divergence_factor: float = 3.0,
+        max_rollbacks: int = 5,
+        warm_start: bool = False,
+        seed: int | None = None,
+    ) -> None:
+        self.n_hidden = n_hidden
+        self.hidden = hidden
+        self.n_copies = n_copies
+        self.visible = visible
+        self.learn_variance = learn_variance
+        self.tie_variance = tie_variance
+        self.layout = layout
+        self.n_steps = n_steps
+        self.persistent = persistent
+        self.learning_rate = learning_rate
+        self.variance_learning_rate = variance_learning_rate
+        self.initial_momentum = initial_momentum
+        self.final_momentum = final_momentum
+        self.momentum_switch_epoch = momentum_switch_epoch
+        self.learning_rate_decay = learning_rate_decay
+        self.weight_decay = weight_decay
+        self.sparsity_target = sparsity_target
+        self.sparsity_cost = sparsity_cost
+        self.sparsity_decay = sparsity_decay
+        self.batch_size = batch_size
+        self.epochs = epochs
+        self.sigma_floor = sigma_floor
+        self.sigma_ceiling = sigma_ceiling
+        self.initial_sigma = initial_sigma
+        self.weight_scale = weight_scale
+        self.max_step = max_step
+        self.divergence_factor = divergence_factor
+        self.max_rollbacks = max_rollbacks
+        self.warm_start = warm_start
+        self.seed = seed
+
+    # ---------------------------------------------------------------- sklearn protocol
+
+    @classmethod
+    def _param_names(cls) -> list[str]:
+        signature = inspect.signature(cls.__init__)
+        return sorted(
+            p.name for p in signature.parameters.values()
+            if p.kind is inspect.Parameter.KEYWORD_ONLY
+        )
+
+    def get_params(self, deep: bool = True) -> dict[str, Any]:
+        """Hyperparameters as a dict (the ``__init__`` keywords).
+
+        Parameters
+        ----------
+        deep : bool, default=True
+            Accepted for scikit-learn compatibility; the RBM has no nested estimators.
+
+        Returns
+        -------
+        params : dict
+        """
+        return {name: getattr(self, name) for name in self._param_names()}
+
+    def set_params(self, **params: Any) -> RBM:
+        """Set hyperparameters by keyword; unknown names raise :class:`ParameterError`.
+
+        Returns
+        -------
+        self : RBM
+        """
+        valid = self._param_names()
+        for name, value in params.items():
+            if name not in valid:
+                raise ParameterError(
+                    f"unknown RBM parameter {name!r}; valid parameters: {', '.join(valid)}"
+                )
+            setattr(self, name, value)
+        return self
+
+    def __repr__(self) -> str:
+        defaults = {
+            p.name: p.default for p in inspect.signature(type(self).__init__).parameters.values()
+            if p.kind is inspect.Parameter.KEYWORD_ONLY
+        }
+        changed = [f"{k}={v!r}" for k, v in self.get_params().items() if v != defaults[k]]
+        return f"{type(self).__name__}({', '.join(changed)})"
+
+    def __sklearn_is_fitted__(self) -> bool:
+        return hasattr(self, "weights_")
+
+    def __sklearn_tags__(self) -> Any:
+        """Estimator tags for scikit-learn ≥ 1.6 (its Pipeline asks every step for them).
+
+        Only scikit-learn calls this, so it is imported already; timbrel itself never
+        imports scikit-learn from this module.
+        """
+        from sklearn.utils import InputTags, Tags, TargetTags, TransformerTags
+
+        return Tags(
+            estimator_type=None,
+            target_tags=TargetTags(required=False),
+            transformer_tags=TransformerTags(preserves_dtype=["float32"]),
+            input_tags=InputTags(two_d_array=True, allow_nan=False),
+            non_deterministic=self.seed is None,
+        )
+
+    # ---------------------------------------------------------------- validation
+
+    def _check_params(self) -> None:
+        check_params(self.get_params())
+
+    def _check_fitted(self) -> None:
+        if not hasattr(self, "weights_"):
+            raise NotFittedError(
+                "this RBM is not fitted yet; call fit, partial_fit or initialize first"
+            )
+        n_visible = self.n_features_in_
+        for name, shape in (
+            ("weights_", (n_visible, self.n_hidden)),
+            ("visible_bias_", (n_visible,)),
+            ("hidden_bias_", (self.n_hidden,)),
+        ):
+            value = getattr(self, name)
+            if not (isinstance(value, np.ndarray) and value.dtype == F32
+                    and value.flags.c_contiguous):
+                value = np.ascontiguousarray(value, dtype=F32)
+                setattr(self, name, value)
+            if value.shape != shape:
+                raise ParameterError(f"{name} must have shape {shape}; got {value.shape}")
+
+    def _check_input(self, values: Any, *, name: str = "X", width: int | None = None,
+                     what: str = "visible units") -> np.ndarray:
+        array = _as_float32_matrix(values, name=name)
+        expected = self.n_features_in_ if width is None else width
+        if array.shape[1] != expected:
+            raise ParameterError(
+                f"{name} has {array.shape[1]} columns but the model has {expected} {what}"
+            )
+        return array
+
+    # ---------------------------------------------------------------- unit kinds
+
+    @property
+    def _hidden_units(self) -> HiddenUnits:
+        return hidden_units(self.hidden, self.n_copies)
+
+    @property
+    def _visible_units(self) -> VisibleUnits:
+        return visible_units(self.visible)
+
+    # ---------------------------------------------------------------- variance plumbing
+
+    @property
+    def _tied(self) -> bool:
+        return (self.tie_variance == "band" and self.layout is not None
+                and self.visible == "gaussian")
+
+    @property
+    def _group_shape(self) -> tuple[int, int]:
+        if self.layout is None:
+            return (1, self.n_features_in_)
+        return (int(self.layout[0]), int(self.layout[1]))
+
+    @property
+    def _n_groups(self) -> int:
+        return self._group_shape[1] if self._tied else self.n_features_in_
+
+    def _expand(self, grouped: np.ndarray) -> np.ndarray:
+        return np.tile(grouped, self._group_shape[0]) if self._tied else grouped
+
+    def _group_sum(self, full: np.ndarray) -> np.ndarray:
+        return full.reshape(self._group_shape).sum(axis=0) if self._tied else full
+
+    def _sync_variance(self) -> None:
+        log_var = self._expand(self._log_variance).astype(F32)
+        self._sigma = np.exp(0.5 * log_var).astype(F32)
+        self._inv_var = np.exp(-log_var).astype(F32)
+
+    @property
+    def sigma_(self) -> np.ndarray:
+        if not hasattr(self, "_log_variance"):
+            raise NotFittedError("this RBM is not fitted yet; sigma_ is not available")
+        view = self._sigma.view()
+        view.flags.writeable = False
+        return view
+
+    @sigma_.setter
+    def sigma_(self, value: Any) -> None:
+        if not hasattr(self, "weights_"):
+            raise NotFittedError("initialize or fit the RBM before setting sigma_")
+        sigma = np.asarray(value, dtype=F32).reshape(-1)
+        if sigma.shape != (self.n_features_in_,):
+            raise ParameterError(
+                f"sigma_ must have shape ({self.n_features_in_},); got {np.shape(value)}"
+            )
+        if not (np.isfinite(sigma).all() and (sigma > 0).all()):
+            raise ParameterError("sigma_ must be finite and positive")
+        if not self._visible_units.has_variance and not np.all(sigma == 1):
+            raise ParameterError("binary visibles have sigma_ = 1; it cannot be changed")
+        if self._tied:
+            per_position = sigma.reshape(self._group_shape)
+            if not np.all(per_position == per_position[0]):
+                raise ParameterError(
+                    "with tie_variance='band' every context position of a band must share "
+                    "one sigma"
+                )
+            sigma = per_position[0]
+        self._log_variance = (2.0 * np.log(sigma)).astype(F32)
+        self._sync_variance()
+
+    def _params(self) -> dict[str, np.ndarray]:
+        """The learned arrays by their state names (z grouped as learned)."""
+        return {"weights": self.weights_, "visible_bias": self.visible_bias_,
+                "hidden_bias": self.hidden_bias_, "log_variance": self._log_variance}
+
+    def _parameters_finite(self) -> bool:
+        return all(bool(np.isfinite(a).all()) for a in self._params().values())
+
+    # ---------------------------------------------------------------- initialisation
+
+    def initialize(self, n_visible: int, *, visible_mean: Any = None) -> RBM:
+        """Create fresh parameters and optimiser state for ``n_visible`` inputs.
+
+        Resets the generator from ``seed``, the history and the epoch counter.
+
+        Parameters
+        ----------
+        n_visible : int
+            Number of visible units, ≥ 1 (equal to n_positions × n_bands with a layout).
+        visible_mean : array-like of shape (n_visible,) or None, default=None
+            Data mean used to start the visible biases: the mean itself for Gaussian
+            visibles, its clipped log-odds for binary ones (Hinton 2010, sec. 8).  None
+            starts them at zero.
+
+        Returns
+        -------
+        self : RBM
+        """
+        self._check_params()
+        if not is_int(n_visible) or n_visible < 1:
+            raise ParameterError(f"n_visible must be an integer ≥ 1; got {n_visible!r}")
+        n_visible = int(n_visible)
+        if self.layout is not None and self.layout[0] * self.layout[1] != n_visible:
+            raise ParameterError(
+                f"layout {tuple(self.layout)} describes {self.layout[0] * self.layout[1]} "
+                f"visible units but n_visible is {n_visible}"
+            )
+        rng = np.random.default_rng(self.seed)
+        self.n_features_in_ = n_visible
+        weights = rng.standard_normal((n_visible, self.n_hidden), dtype=F32)
+        weights *= F32(self.weight_scale)
+        self.weights_ = weights
+        self.hidden_bias_ = np.zeros(self.n_hidden, F32)
+        self.visible_bias_ = self._start_visible_bias(n_visible, visible_mean)
+        start = 2.0 * math.log(self.initial_sigma) if self._visible_units.has_variance else 0.0
+        self._log_variance = np.full(self._n_groups, start, F32)
+        self._sync_variance()
+        self._state = TrainingState.fresh(rng, self._params())
+        self.history_: list[dict[str, Any]] = []
+        self.n_epochs_ = 0
+        self.learning_rate_scale_ = 1.0
+        return self
+
+    def _start_visible_bias(self, n_visible: int, visible_mean: Any) -> np.ndarray:
+        if visible_mean is None:
+            return np.zeros(n_visible, F32)
+        mean = np.asarray(visible_mean, dtype=np.float64).reshape(-1)
+        if mean.shape != (n_visible,) or not np.isfinite(mean).all():
+            raise ParameterError(
+                f"visible_mean must be {n_visible} finite values; got shape {mean.shape}"
+            )
+        return self._visible_units.start_bias(mean).astype(F32)
+
+    def _training_state(self) -> TrainingState:
+        """The optimiser state, made fresh after load or manual parameter assignment."""
+        state = getattr(self, "_state", None)
+        if state is None:
+            state = self._state = TrainingState.fresh(np.random.default_rng(self.seed),
+                                                      self._params())
+        for name, default in (("n_epochs_", 0), ("learning_rate_scale_", 1.0)):
+            if not hasattr(self, name):
+                setattr(self, name, default)
+        if not hasattr(self, "history_"):
+            self.history_ = []
+        return state
+
+    # ---------------------------------------------------------------- inference
+
+    def _make_rng(self, rng: Any) -> np.random.Generator:
+        if rng is None:
+            return np.random.default_rng(self.seed)
+        if isinstance(rng, np.random.Generator):
+            return rng
+        if is_int(rng) and rng >= 0:
+            return np.random.default_rng(int(rng))
+        raise ParameterError(f"rng must be None, an integer ≥ 0 or a numpy Generator; got {rng!r}")
+
+    def _hidden_input(self, v: np.ndarray) -> np.ndarray:
+        out = self._visible_units.scale(v, self._inv_var) @ self.weights_
+        out += self.hidden_bias_
+        return out
+
+    def transform(self, X: Any) -> np.ndarray:
+        """Mean hidden activation for each row of X.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+
+        Returns
+        -------
+        H : ndarray of shape (n_samples, n_hidden), float32
+            max(0, x) for relu, sigmoid(x) for binary, Σₙ sigmoid(x − n + 0.5) for stepped.
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        hidden = self._hidden_units
+        scaled_weights = self._visible_units.scale(self.weights_, self._inv_var[:, None])
+        out = np.empty((X.shape[0], self.n_hidden), F32)
+        rows = min(_TRANSFORM_CHUNK, X.shape[0])
+        tmp = np.empty((rows, self.n_hidden), F32)
+        inputs = np.empty((rows, self.n_hidden), F32) if hidden.mean_rereads_input else None
+        for start in range(0, X.shape[0], _TRANSFORM_CHUNK):
+            chunk = out[start:start + _TRANSFORM_CHUNK]
+            x = chunk if inputs is None else inputs[: chunk.shape[0]]
+            np.matmul(X[start:start + _TRANSFORM_CHUNK], scaled_weights, out=x)
+            x += self.hidden_bias_
+            hidden.mean(x, chunk, tmp[: chunk.shape[0]])
+        return out
+
+    def fit_transform(self, X: Any, y: Any = None) -> np.ndarray:
+        """Fit to X, then return ``transform(X)``; see :meth:`fit` and :meth:`transform`."""
+        return self.fit(X, y).transform(X)
+
+    def mean_visible(self, H: Any) -> np.ndarray:
+        """Conditional mean of the visibles given hidden states.
+
+        Parameters
+        ----------
+        H : array-like of shape (n_samples, n_hidden)
+
+        Returns
+        -------
+        V : ndarray of shape (n_samples, n_visible), float32
+            b + H Wᵀ (Gaussian) or sigmoid(b + H Wᵀ) (binary).
+        """
+        self._check_fitted()
+        H = self._check_input(H, name="H", width=self.n_hidden, what="hidden units")
+        out = H @ self.weights_.T
+        out += self.visible_bias_
+        return self._visible_units.mean(out)
+
+    def sample_hidden(self, X: Any, *, rng: Any = None) -> np.ndarray:
+        """Draw hidden states given visibles.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+        rng : None, int or numpy.random.Generator, default=None
+            None uses a new generator seeded from ``seed`` (so repeated calls repeat the
+            draw); pass a Generator to continue one stream.  Training's generator is
+            never touched.
+
+        Returns
+        -------
+        H : ndarray of shape (n_samples, n_hidden), float32
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        gen = self._make_rng(rng)
+        x = self._hidden_input(X)
+        out = np.empty_like(x)
+        return self._hidden_units.sample(x, out, np.empty_like(x), np.empty_like(x), gen)
+
+    def sample_visible(self, H: Any, *, rng: Any = None) -> np.ndarray:
+        """Draw visibles given hidden states: N(b + HWᵀ, σ²) or Bernoulli(sigmoid(b + HWᵀ)).
+
+        Parameters
+        ----------
+        H : array-like of shape (n_samples, n_hidden)
+        rng : None, int or numpy.random.Generator, default=None
+            As for :meth:`sample_hidden`.
+
+        Returns
+        -------
+        V : ndarray of shape (n_samples, n_visible), float32
+        """
+        gen = self._make_rng(rng)
+        mean = self.mean_visible(H)
+        noise = np.empty_like(mean)
+        return self._visible_units.sample(mean, self._sigma, gen, noise,
+                                          np.empty(noise.size // 2 + 1, F32), noise)
+
+    def gibbs(self, X: Any, *, steps: int = 1, rng: Any = None) -> np.ndarray:
+        """Run block Gibbs sampling v → h → v from X.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+            Starting visibles.
+        steps : int, default=1
+            Number of full v → h → v steps, ≥ 1.
+        rng : None, int or numpy.random.Generator, default=None
+            As for :meth:`sample_hidden`.
+
+        Returns
+        -------
+        V : ndarray of shape (n_samples, n_visible), float32
+            The visibles after the last step.
+        """
+        if not is_int(steps) or steps < 1:
+            raise ParameterError(f"steps must be an integer ≥ 1; got {steps!r}")
+        self._check_fitted()
+        v = self._check_input(X)
+        gen = self._make_rng(rng)
+        for _ in range(steps):
+            v = self.sample_visible(self.sample_hidden(v, rng=gen), rng=gen)
+        return v
+
+    def free_energy(self, X: Any) -> np.ndarray:
+        """Free energy F(v) = −log Σ_h exp(−E(v, h)) of each row.
+
+        Gaussian: Σᵢ (vᵢ − bᵢ)²/(2σᵢ²) − Σⱼ φ(xⱼ); binary: −b·v − Σⱼ φ(xⱼ), with
+        φ = softplus (binary), Σₙ₌₁ᴺ softplus(x − n + 0.5) (stepped) or the same sum
+        to infinity within 1e-6 per unit (relu).  No additive constant is dropped:
+        p(v) = exp(−F(v)) / Z with Z = ∫ Σ_h exp(−E).
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+
+        Returns
+        -------
+        F : ndarray of shape (n_samples,), float32
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        out = np.empty(X.shape[0], F32)
+        for start in range(0, X.shape[0], _TRANSFORM_CHUNK):
+            v = X[start:start + _TRANSFORM_CHUNK]
+            phi = self._hidden_units.log_partial(self._hidden_input(v))
+            hidden_term = phi.sum(axis=1, dtype=np.float64).astype(F32)
+            visible_term = self._visible_units.energy(v, self.visible_bias_, self._inv_var)
+            out[start:start + v.shape[0]] = visible_term - hidden_term
+        return out
+
+    def reconstruction_error(self, X: Any) -> float:
+        """Mean squared error of the mean-field reconstruction, in the units of X.
+
+        The reconstruction is ``mean_visible(transform(X))``.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+
+        Returns
+        -------
+        error : float
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        total = 0.0
+        for start in range(0, X.shape[0], _TRANSFORM_CHUNK):
+            v = X[start:start + _TRANSFORM_CHUNK]
+            difference = self.mean_visible(self.transform(v))
+            difference -= v
+            total += float(np.vdot(difference, difference))
+        return total / X.size
+
+    def exact_log_partition(self) -> float:
+        """log Z by enumerating all 2^n_hidden hidden states (binary hiddens, n_hidden ≤ 20).
+
+        Gaussian visibles integrate in closed form:
+        log Z = Σᵢ ½ log(2πσᵢ²) + log Σ_h exp(c·h + Σᵢ ((bᵢ + (Wh)ᵢ)² − bᵢ²)/(2σᵢ²));
+        binary visibles: log Z = log Σ_h exp(c·h + Σᵢ softplus(bᵢ + (Wh)ᵢ)).
+        Computed in float64.
+
+        Returns
+        -------
+        log_z : float
+        """
+        self._check_fitted()
+        if self.hidden != "binary" or self.n_hidden > EXACT_MAX_HIDDEN:
+            raise ParameterError(
+                f"exact_log_partition needs binary hiddens and n_hidden ≤ {EXACT_MAX_HIDDEN}; "
+                f"got hidden={self.hidden!r}, n_hidden={self.n_hidden}"
+            )
+        weights = self.weights_.astype(np.float64)
+        b = self.visible_bias_.astype(np.float64)
+        c = self.hidden_bias_.astype(np.float64)
+        var = self._sigma.astype(np.float64) ** 2
+        gaussian = self._visible_units.has_variance
+        n_states = 1 << self.n_hidden
+        bits = np.arange(self.n_hidden)
+        log_terms = []
+        for start in range(0, n_states, 1 << 16):
+            codes = np.arange(start, min(start + (1 << 16), n_states))
+            states = ((codes[:, None] >> bits) & 1).astype(np.float64)
+            mean = states @ weights.T + b
+            if gaussian:
+                term = states @ c + ((mean**2 - b**2) / (2 * var)).sum(axis=1)
+            else:
+                term = states @ c + np.logaddexp(0.0, mean).sum(axis=1)
+            log_terms.append(term)
+        stacked = np.concatenate(log_terms)
+        top = stacked.max()
+        log_z = float(top + np.log(np.exp(stacked - top).sum()))
+        if gaussian:
+            log_z += float(0.5 * np.log(2 * np.pi * var).sum())
+        return log_z
+
+    # ---------------------------------------------------------------- gradients
+
+    def cd_gradient(self, X: Any, *, n_steps: int | None = None,
+                    rng: Any = None) -> dict[str, np.ndarray]:
+        """Contrastive-divergence estimate of the log-likelihood gradient at X.
+
+        Runs the same code as a training update (chains start at the rows of X;
+        ``persistent`` is ignored), without applying it, without weight decay and
+        without the sparsity cost.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+            Data; one negative chain per row.
+        n_steps : int or None, default=None
+            Gibbs steps; None uses the ``n_steps`` hyperparameter.
+        rng : None, int or numpy.random.Generator, default=None
+            As for :meth:`sample_hidden`.
+
+        Returns
+        -------
+        gradient : dict of str to ndarray
+            Ascent directions ``weights`` (n_visible, n_hidden), ``visible_bias``
+            (n_visible,), ``hidden_bias`` (n_hidden,) and, for Gaussian visibles,
+            ``log_variance`` with respect to the independent z parameters: (n_bands,)
+            with ``tie_variance="band"`` and a layout, (n_visible,) otherwise.
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        steps = self.n_steps if n_steps is None else n_steps
+        if not is_int(steps) or steps < 1:
+            raise ParameterError(f"n_steps must be an integer ≥ 1; got {steps!r}")
+        # a state of its own: training's generator, chains and buffers stay untouched
+        state = TrainingState.fresh(self._make_rng(rng), self._params())
+        plan = StepPlan(rate=1.0, n_steps=int(steps),
+                        variance=self._visible_units.has_variance)
+        grads = contrastive_step(self, state, X, plan, tally=None)
+        return self._gradient_dict(grads[0].copy(), *grads[1:])
+
+    @staticmethod
+    def _gradient_dict(weights: np.ndarray, visible: np.ndarray, hidden: np.ndarray,
+                       log_variance: np.ndarray | None) -> dict[str, np.ndarray]:
+        result = {"weights": weights, "visible_bias": visible, "hidden_bias": hidden}
+        if log_variance is not None:
+            result["log_variance"] = log_variance
+        return result
+
+    def free_energy_gradient(self, X: Any) -> dict[str, np.ndarray]:
+        """Mean over rows of the analytic derivatives of :meth:`free_energy`.
+
+        Uses the same phase-combination code as training, with the exact conditional
+        mean dφ/dx of the free energy as hidden expectation (for relu:
+        Σₙ sigmoid(x − n + 0.5) over the same copies as the free energy).
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+
+        Returns
+        -------
+        gradient : dict of str to ndarray
+            ∂F/∂W (n_visible, n_hidden), ∂F/∂b, ∂F/∂c and, for Gaussian visibles,
+            ∂F/∂z grouped as in :meth:`cd_gradient`.
+        """
+        self._check_fitted()
+        X = self._check_input(X)
+        n = X.shape[0]
+        scaled = self._visible_units.scale(X, self._inv_var)
+        x = scaled @ self.weights_
+        x += self.hidden_bias_
+        expectation = self._hidden_units.expectation(x)
+        expectation *= F32(1.0 / n)
+        deviation = X - self.visible_bias_
+        np.square(deviation, out=deviation)
+        grad_weights = np.empty_like(self.weights_)
+        phases = Phases(scaled, expectation, n_pos=n, pos_sum=X.sum(axis=0),
+                        pos_sq=deviation.sum(axis=0))
+        grads = combine_phases(self, phases, grad_weights, rate=1.0,
+                               variance=self._visible_units.has_variance)
+        # the phase statistics are −∂F/∂θ
+        grad_visible, grad_hidden, grad_log_var = grads
+        return self._gradient_dict(-grad_weights, -grad_visible, -grad_hidden,
+                                   None if grad_log_var is None else -grad_log_var)
+
+    # ---------------------------------------------------------------- training
+
+    def fit_epoch(self, make_batches: Callable[[], Iterable[Any]], *, epoch: int
+                  ) -> dict[str, Any]:
+        """Train one epoch, guarded against divergence.
+
+        Snapshots all training state, runs one CD update per minibatch, and checks the
+        result.  The epoch counts as diverged when a parameter or the reconstruction
+        error is non-finite, or when the relative reconstruction error (squared error
+        over the minibatches' squared deviation from their column means) exceeds both 1
+        and ``divergence_factor`` times a reference: the larger of the previous epoch's
+        and this epoch's first minibatch's (measured before any update, so data that are
+        harder from the start do not count as divergence).  A diverged epoch is
+        rolled back to the snapshot (including the generator), all learning rates are
+        halved (``learning_rate_scale_``), a :class:`DivergenceWarning` is issued and the
+        epoch is retried; after ``max_rollbacks`` retries :class:`DivergenceError` is
+        raised with the model restored.  Any other exception also restores the
+        snapshot.  The model never holds a NaN when this method returns.
+
+        Parameters
+        ----------
+        make_batches : callable
+            Zero-argument callable returning an iterable of minibatches, each a
+            float32 array of shape (n_rows, n_visible); called again for each retry.
+            The model is initialised from the first minibatch if needed.
+        epoch : int
+            Index of this epoch, ≥ 0; sets the momentum and ``n_epochs_ = epoch + 1``.
+
+        Returns
+        -------
+        stats : dict
+            ``epoch`` (epochs completed: ``epoch + 1``), ``recon_error`` (mean squared
+            error of the reconstruction from
+            sampled hiddens, units of X), ``relative_error``, ``mean_hidden_activity``,
+            ``dead_fraction`` (share of hidden units whose input was never positive),
+            ``sigma_min``, ``sigma_max``, ``rollbacks``, ``rollback_reasons``,
+            ``limited_steps``, ``learning_rate_scale``, ``learning_rate``, ``momentum``,
+            ``n_rows``, ``seconds`` (this epoch's).
+        """
+        self._check_params()
+        if not callable(make_batches):
+            raise ParameterError(f"make_batches must be a zero-argument callable; got "
+                                 f"{type(make_batches).__name__}")
+        if not is_int(epoch) or epoch < 0:
+            raise ParameterError(f"epoch must be an integer ≥ 0; got {epoch!r}")
+        if not hasattr(self, "weights_"):
+            first = next(iter(make_batches()), None)
+            if first is None:
+                raise ParameterError("make_batches() yielded no minibatches")
+            first = _as_float32_matrix(first, name="minibatch 0")
+            self.initialize(first.shape[1], visible_mean=first.mean(axis=0))
+        self._check_fitted()
+        self._training_state()
+        stats = guarded_epoch(self, make_batches, int(epoch))
+        self.n_epochs_ = int(epoch) + 1
+        self.history_.append(stats)
+        return dict(stats)
+
+    def fit(self, X: Any, y: Any = None) -> RBM:
+        """Train for ``epochs`` epochs on the rows of X, shuffled each epoch.
+
+        Re-initialises the model (generator from ``seed``, visible biases from the data
+        mean) unless ``warm_start`` is set and the model is already initialised.  Each
+        epoch goes through :meth:`fit_epoch`.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+            Training data, used as given (standardise beforehand).
+        y : ignored
+
+        Returns
+        -------
+        self : RBM
+        """
+        self._check_params()
+        X = _as_float32_matrix(X, name="X")
+        if not (self.warm_start and hasattr(self, "weights_")):
+            self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
+        else:
+            self._check_fitted()
+            X = self._check_input(X)
+        state = self._training_state()
+        n_rows, size = X.shape[0], self.batch_size
+        buffer = np.empty((min(size, n_rows), X.shape[1]), F32)
+        for _ in range(self.epochs):
+            order = state.rng.permutation(n_rows)
+
+            def make_batches(order: np.ndarray = order) -> Iterable[np.ndarray]:
+                for start in range(0, n_rows, size):
+                    index = order[start:start + size]
+                    yield np.take(X, index, axis=0, out=buffer[: index.shape[0]])
+
+            self.fit_epoch(make_batches, epoch=self.n_epochs_)
+        return self
+
+    def partial_fit(self, X: Any, y: Any = None) -> RBM:
+        """One CD update per minibatch of X, in the given order (one guarded epoch).
+
+        Initialises the model from X on the first call.  Each call counts as one epoch
+        for the momentum schedule and the history.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_visible)
+        y : ignored
+
+        Returns
+        -------
+        self : RBM
+        """
+        self._check_params()
+        X = _as_float32_matrix(X, name="X")
+        if not hasattr(self, "weights_"):
+            self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
+        X = self._check_input(X)
+        size = self.batch_size
+
+        def make_batches() -> Iterable[np.ndarray]:
+            for start in range(0, X.shape[0], size):
+                yield X[start:start + size]
+
+        self._training_state()
+        self.fit_epoch(make_batches, epoch=self.n_epochs_)
+        return self
+
+    # ---------------------------------------------------------------- checkpoints
+
+    def get_state(self) -> dict[str, Any]:
+        """Everything needed to resume training bit for bit.
+
+        Returns
+        -------
+        state : dict
+            Arrays ``weights``, ``visible_bias``, ``hidden_bias``, ``log_variance``
+            (grouped z), ``velocity_weights``, ``velocity_visible_bias``,
+            ``velocity_hidden_bias``, ``velocity_log_variance``, and when present
+            ``chain`` (persistent hidden states) and ``sparsity_estimate``; plus ``rng``
+            (JSON-able ``bit_generator.state``), ``epoch``, ``learning_rate_scale``,
+            ``reference_error``, ``chain_needs_start`` and ``history`` (JSON-able).
+        """
+        self._check_fitted()
+        train = self._training_state()
+        state: dict[str, Any] = {k: v.copy() for k, v in self._params().items()}
+        for name, value in train.velocity.items():
+            state[f"velocity_{name}"] = value.copy()
+        if train.chain is not None:
+            state["chain"] = train.chain.copy()
+        if train.sparsity_estimate is not None:
+            state["sparsity_estimate"] = train.sparsity_estimate.copy()
+        state["rng"] = json_safe(train.rng.bit_generator.state)
+        state["epoch"] = int(self.n_epochs_)
+        state["learning_rate_scale"] = float(self.learning_rate_scale_)
+        state["reference_error"] = train.reference_error
+        state["chain_needs_start"] = bool(train.chain_needs_start)
+        state["history"] = json_safe(self.history_)
+        return state
+
+    def set_state(self, state: Mapping[str, Any]) -> RBM:
+        """Restore a state from :meth:`get_state` (hyperparameters must match its shapes).
+
+        Parameters
+        ----------
+        state : mapping
+            As returned by :meth:`get_state`, possibly after a round trip through
+            ``np.savez`` (arrays) and JSON (the rest).
+
+        Returns
+        -------
+        self : RBM
+        """
+        self._check_params()
+        required = (*PARAMETER_NAMES, "rng", "epoch",
+                    *(f"velocity_{name}" for name in PARAMETER_NAMES))
+        missing = [k for k in required if k not in state]
+        if missing:
+            raise ParameterError(f"state is missing {', '.join(missing)}")
+        weights = np.array(state["weights"], dtype=F32, order="C")
+        if weights.ndim != 2 or weights.shape[1] != self.n_hidden:
+            raise ParameterError(
+                f"state weights have shape {weights.shape}; this RBM has n_hidden="
+                f"{self.n_hidden}"
+            )
+        self.initialize(weights.shape[0])
+        train = self._training_state()
+        params = self._params()
+        for name in PARAMETER_NAMES:
+            for key, target in ((name, params[name]), (f"velocity_{name}",
+                                                      train.velocity[name])):
+                value = np.asarray(state[key], dtype=F32)
+                if value.shape != target.shape:
+                    raise ParameterError(f"state[{key!r}] has shape {value.shape}; expected "
+                                         f"{target.shape}")
+                if not np.isfinite(value).all():
+                    raise ParameterError(f"state[{key!r}] holds NaN or infinite values")
+        self.weights_ = weights
+        self.visible_bias_ = np.array(state["visible_bias"], dtype=F32)
+        self.hidden_bias_ = np.array(state["hidden_bias"], dtype=F32)
+        self._log_variance = np.array(state["log_variance"], dtype=F32)
+        self._sync_variance()
+        train.velocity = {name: np.array(state[f"velocity_{name}"], dtype=F32, order="C")
+                          for name in PARAMETER_NAMES}
+        self._set_chains(train, state)
+        try:
+            train.rng.bit_generator.state = dict(state["rng"])
+        except (TypeError, ValueError, KeyError) as exc:
+            raise ParameterError(f"state['rng'] is not a generator state for "
+                                 f"{type(train.rng.bit_generator).__name__}: {exc}") from None
+        self.n_epochs_ = int(state["epoch"])
+        self.learning_rate_scale_ = float(state.get("learning_rate_scale", 1.0))
+        reference = state.get("reference_error")
+        train.reference_error = None if reference is None else float(reference)
+        self.history_ = [dict(entry) for entry in state.get("history", [])]
+        return self
+
+    def _set_chains(self, train: TrainingState, state: Mapping[str, Any]) -> None:
+        chain = state.get("chain")
+        if chain is not None:
+            chain = np.array(chain, dtype=F32, order="C")
+            if chain.shape != (self.batch_size, self.n_hidden):
+                raise ParameterError(f"state['chain'] has shape {chain.shape}; expected "
+                                     f"{(self.batch_size, self.n_hidden)}")
+        train.chain = chain
+        train.chain_needs_start = bool(state.get("chain_needs_start", False))
+        estimate = state.get("sparsity_estimate")
+        train.sparsity_estimate = None if estimate is None else np.array(estimate, dtype=F32)
+
+    # ---------------------------------------------------------------- model files
+
+    def save(self, path: str | os.PathLike[str], *, metadata: Mapping[str, Any] | None = None,
+             arrays: Mapping[str, Any] | None = None) -> Path:
+        """Write the fitted model to one ``.npz`` file, atomically.
+
+        The file holds the parameter arrays, the user ``arrays`` and a JSON header
+        (format name and version, hyperparameters, history, ``metadata``, array names
+        and a SHA-256 checksum over the arrays and the rest of the header).  It is
+        written without pickles to a temporary file in the same folder, then renamed
+        over ``path``.  Optimiser state is not included (see :meth:`get_state`).
+
+        Parameters
+        ----------
+        path : str or path-like
+            Destination, used as given (``.npz`` recommended).
+        metadata : mapping or None, default=None
+            JSON-able dict stored with the model.
+        arrays : mapping of str to array-like or None, default=None
+            Extra numeric arrays (names of letters, digits, ``_.-``, ≤ 64 characters).
+
+        Returns
+        -------
+        path : pathlib.Path
+        """
+        self._check_fitted()
+        if not self._parameters_finite():
+            raise ParameterError("refusing to save a model with NaN or infinite parameters")
+        meta = {} if metadata is None else metadata
+        if not isinstance(meta, Mapping):
+            raise ParameterError(f"metadata must be a dict; got {type(meta).__name__}")
+        try:
+            meta = json.loads(canonical_json(dict(meta)))
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(f"metadata must be JSON-serialisable: {exc}") from None
+        # z is the learned parameter (grouped per band when tied); σ is stored too for
+        # readers of the file, and must agree with z on loading
+        params = {**self._params(),
+                  "log_variance": np.ascontiguousarray(self._log_variance, dtype=F32),
+                  "sigma": np.ascontiguousarray(self._sigma)}
+        hyper = self.get_params()
+        if hyper["layout"] is not None:
+            hyper["layout"] = [int(n) for n in hyper["layout"]]
+        header = {
+            "hyperparameters": json_safe(hyper),
+            "n_features_in": int(self.n_features_in_),
+            "n_epochs": int(getattr(self, "n_epochs_", 0)),
+            "learning_rate_scale": float(getattr(self, "learning_rate_scale_", 1.0)),
+            "history": json_safe(getattr(self, "history_", [])),
+            "metadata": meta,
+        }
+        return write_model_archive(path, params, header, arrays)
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> RBM:
+        """Read a model file written by :meth:`save`, verifying it fully.
+
+        Parameters
+        ----------
+        path : str or path-like
+
+        Returns
+        -------
+        rbm : RBM
+            Fitted, with ``metadata_`` set.
+
+        Raises
+        ------
+        ModelFileError
+            Naming the file and the reason (see :func:`read_model_file`).
+        """
+        return read_model_file(path).rbm
+
+
+def read_model_file(path: str | os.PathLike[str]) -> ModelFile:
+    """Read and verify a model file.
+
+    Refuses, with :class:`ModelFileError` naming the file and the reason: a missing
+    file; anything that is not a complete zip (``.npz``) archive (truncated files
+    included); a damaged member (zip CRC); a missing or unreadable header; another
+    format; a newer format version; missing or unlisted arrays; object (pickled)
+    arrays; wrong dtypes or shapes; NaN/Inf parameters or non-positive σ; a checksum
+    mismatch; invalid hyperparameters.  Always loads with ``allow_pickle=False``.
+
+    Parameters
+    ----------
+    path : str or path-like
+
+    Returns
+    -------
+    model_file : ModelFile
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, os
+    >>> from timbrel import RBM
+    >>> from timbrel.model import read_model_file
+    >>> X = np.random.default_rng(0).standard_normal((64, 4)).astype(np.float32)
+    >>> path = os.path.join(tempfile.mkdtemp(), "m.npz")
+    >>> _ = RBM(n_hidden=3, epochs=1, seed=0).fit(X).save(path, metadata={"note": "x"})
+    >>> read_model_file(path).metadata
+    {'note': 'x'}
+    """
+    archive = read_model_archive(path)
+    path = Path(path)
+    header, params = archive.header, archive.params
+    try:
+        rbm = RBM(**archive.hyperparameters)
+        rbm.initialize(int(header["n_features_in"]))
+    except (ParameterError, TypeError) as exc:
+        raise refuse(path, f"invalid hyperparameters ({exc})") from None
+    rbm.weights_ = np.ascontiguousarray(params["weights"])
+    rbm.visible_bias_ = np.ascontiguousarray(params["visible_bias"])
+    rbm.hidden_bias_ = np.ascontiguousarray(params["hidden_bias"])
+    log_var = params["log_variance"]
+    if log_var.shape != rbm._log_variance.shape:
+        raise refuse(path, f"array 'param.log_variance' has shape {log_var.shape}; expected "
+                           f"{rbm._log_variance.shape} for these hyperparameters")
+    rbm._log_variance = log_var.copy()
+    rbm._sync_variance()
+    if not np.array_equal(rbm._sigma, params["sigma"]):
+        raise refuse(path, "arrays 'param.sigma' and 'param.log_variance' disagree")
+    rbm._state = None  # made fresh, from the seed, if training goes on
+    rbm.n_epochs_ = int(header.get("n_epochs", 0))
+    rbm.learning_rate_scale_ = float(header.get("learning_rate_scale", 1.0))
+    rbm.history_ = list(header.get("history", []))
+    metadata = header["metadata"] if isinstance(header["metadata"], dict) else {}
+    rbm.metadata_ = metadata
+    return ModelFile(rbm=rbm, metadata=metadata, arrays=dict(archive.user),
+                     checksum=archive.checksum)

@@ -1,0 +1,69 @@
+"""Reading trained models for inference: timbrel.pipeline."""
+
+import shutil
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from timbrel import ModelFileError
+from timbrel.frontend import FrontEnd
+from timbrel.pipeline import describe_model, describe_text, load_pipeline
+
+DATA = Path(__file__).parent / "data"
+sys.path.insert(0, str(DATA))
+import make_model_v1  # noqa: E402  (the fixture's own audio and settings)
+
+
+def test_model_file_of_the_first_format_gives_the_same_features():
+    # A model file written by the release before the model layer was split (format 1,
+    # tests/data/make_model_v1.py): it still loads, and its features of a librosa chirp
+    # are the ones that release computed, to float32 rounding.
+    expected = np.load(DATA / "model_v1_expected.npz")
+    pipe = load_pipeline(DATA / "model_v1.npz")
+    frames = FrontEnd(pipe.config.frontend).frames(make_model_v1.probe_signal(),
+                                                   make_model_v1.SR)
+    np.testing.assert_array_equal(frames, expected["frames"])
+    np.testing.assert_allclose(pipe.features(frames), expected["features"], rtol=1e-6,
+                               atol=1e-7)
+    # its history lived in the metadata then; the pipeline still finds it
+    assert [row["epoch"] for row in pipe.history] == [1, 2]
+
+
+def test_describe_reads_the_old_file_once_and_renders(tmp_path):
+    pipe = load_pipeline(DATA / "model_v1.npz")
+    summary = describe_model(DATA / "model_v1.npz", pipe)
+    assert summary["n_visible"] == 36 and summary["n_hidden"] == 10
+    assert summary["epochs"] == 2 and len(summary["sigma_per_band"]) == 12
+    # band centres rise with the band index (mel spacing, common practice)
+    centres = [row["centre_hz"] for row in summary["sigma_per_band"]]
+    assert centres == sorted(centres) and centres[-1] < 4000
+    text = describe_text(summary)
+    assert "36 gaussian visible = 3 frames x 12 bands" in text and "10 relu hidden" in text
+
+
+def test_old_checkpoint_resumes_training(tmp_path):
+    # A checkpoint of the first format (it stored the trainer's history in its header)
+    # resumes: one more epoch on the same cache, and the history goes on from 2 to 3.
+    from timbrel.cache import build_cache
+    from timbrel.config import load_config
+    from timbrel.training import checkpoint_path, train
+
+    make_model_v1.write_audio(tmp_path / "audio")
+    config = load_config(None, overrides=make_model_v1.OVERRIDES)
+    build_cache(tmp_path / "audio", tmp_path / "cache", config=config)
+    out = tmp_path / "model_v1.npz"
+    shutil.copy(DATA / "model_v1.checkpoint.npz", checkpoint_path(out))
+    result = train(tmp_path / "cache", out, config=config, model={"epochs": 3}, resume=True)
+    assert [row["epoch"] for row in result.history] == [1, 2, 3]
+    assert "val_recon_error" in result.history[-1]
+
+
+def test_a_bare_model_file_is_not_a_pipeline(tmp_path):
+    from timbrel.model import RBM
+
+    x = np.random.default_rng(0).standard_normal((64, 4)).astype(np.float32)
+    RBM(n_hidden=3, epochs=1, seed=0).fit(x).save(tmp_path / "bare.npz")
+    with pytest.raises(ModelFileError, match="not a trained timbrel pipeline"):
+        load_pipeline(tmp_path / "bare.npz")
