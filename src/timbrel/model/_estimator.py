@@ -31,7 +31,8 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import NotFittedError, ParameterError
+from .._errors import ParameterError
+from ._core import as_float32_matrix
 from ._files import (
     canonical_json,
     json_safe,
@@ -41,43 +42,13 @@ from ._files import (
 )
 from ._guard import guarded_epoch
 from ._kernels import F32
-from ._params import check_params, is_int
-from ._state import PARAMETER_NAMES, TrainingState
-from ._step import Phases, StepPlan, combine_phases, contrastive_step
-from .units import HiddenUnits, VisibleUnits, hidden_units, visible_units
+from ._params import is_int
+from ._queries import EXACT_MAX_HIDDEN, RBMQueries
+from ._state import PARAMETER_NAMES, TrainingState, check_array
 
 __all__ = ["EXACT_MAX_HIDDEN", "RBM", "ModelFile", "read_model_file"]
 
-EXACT_MAX_HIDDEN = 20
-"""Binary-hidden models with at most this many hidden units have log Z by enumeration."""
-
 _TRANSFORM_CHUNK = 8192
-
-
-def _as_float32_matrix(values: Any, *, name: str) -> np.ndarray:
-    """Validate and convert to a C-contiguous float32 (n, d) array; the input is not modified."""
-    if np.iscomplexobj(values):
-        raise ParameterError(f"{name} must be real-valued; got a complex array")
-    try:
-        with np.errstate(over="ignore"):  # overflow to inf is reported below
-            array = np.asarray(values, dtype=F32)
-    except (TypeError, ValueError) as exc:
-        raise ParameterError(f"{name} must be convertible to float32: {exc}") from None
-    if array.ndim != 2:
-        raise ParameterError(
-            f"{name} must be 2-D of shape (n_samples, n_features); got shape {array.shape}"
-        )
-    if array.shape[0] == 0 or array.shape[1] == 0:
-        raise ParameterError(f"{name} must hold at least one row and one column; got shape "
-                             f"{array.shape}")
-    finite = np.isfinite(array)
-    if not finite.all():
-        n_bad = int(array.size - np.count_nonzero(finite))
-        raise ParameterError(
-            f"{name} holds {n_bad} NaN or infinite value(s) (after conversion to float32, "
-            f"which overflows beyond ±3.4e38)"
-        )
-    return np.ascontiguousarray(array)
 
 
 @dataclass(frozen=True)
@@ -102,7 +73,7 @@ class ModelFile:
     checksum: str
 
 
-class RBM:
+class RBM(RBMQueries):
     r"""Restricted Boltzmann machine with Gaussian (or binary) visibles, trained by CD-k.
 
     ``__init__`` only stores the hyperparameters; they are validated by ``fit``,
@@ -370,118 +341,6 @@ class RBM:
             non_deterministic=self.seed is None,
         )
 
-    # ---------------------------------------------------------------- validation
-
-    def _check_params(self) -> None:
-        check_params(self.get_params())
-
-    def _check_fitted(self) -> None:
-        if not hasattr(self, "weights_"):
-            raise NotFittedError(
-                "this RBM is not fitted yet; call fit, partial_fit or initialize first"
-            )
-        n_visible = self.n_features_in_
-        for name, shape in (
-            ("weights_", (n_visible, self.n_hidden)),
-            ("visible_bias_", (n_visible,)),
-            ("hidden_bias_", (self.n_hidden,)),
-        ):
-            value = getattr(self, name)
-            if not (isinstance(value, np.ndarray) and value.dtype == F32
-                    and value.flags.c_contiguous):
-                value = np.ascontiguousarray(value, dtype=F32)
-                setattr(self, name, value)
-            if value.shape != shape:
-                raise ParameterError(f"{name} must have shape {shape}; got {value.shape}")
-
-    def _check_input(self, values: Any, *, name: str = "X", width: int | None = None,
-                     what: str = "visible units") -> np.ndarray:
-        array = _as_float32_matrix(values, name=name)
-        expected = self.n_features_in_ if width is None else width
-        if array.shape[1] != expected:
-            raise ParameterError(
-                f"{name} has {array.shape[1]} columns but the model has {expected} {what}"
-            )
-        return array
-
-    # ---------------------------------------------------------------- unit kinds
-
-    @property
-    def _hidden_units(self) -> HiddenUnits:
-        return hidden_units(self.hidden, self.n_copies)
-
-    @property
-    def _visible_units(self) -> VisibleUnits:
-        return visible_units(self.visible)
-
-    # ---------------------------------------------------------------- variance plumbing
-
-    @property
-    def _tied(self) -> bool:
-        return (self.tie_variance == "band" and self.layout is not None
-                and self.visible == "gaussian")
-
-    @property
-    def _group_shape(self) -> tuple[int, int]:
-        if self.layout is None:
-            return (1, self.n_features_in_)
-        return (int(self.layout[0]), int(self.layout[1]))
-
-    @property
-    def _n_groups(self) -> int:
-        return self._group_shape[1] if self._tied else self.n_features_in_
-
-    def _expand(self, grouped: np.ndarray) -> np.ndarray:
-        return np.tile(grouped, self._group_shape[0]) if self._tied else grouped
-
-    def _group_sum(self, full: np.ndarray) -> np.ndarray:
-        return full.reshape(self._group_shape).sum(axis=0) if self._tied else full
-
-    def _sync_variance(self) -> None:
-        log_var = self._expand(self._log_variance).astype(F32)
-        self._sigma = np.exp(0.5 * log_var).astype(F32)
-        self._inv_var = np.exp(-log_var).astype(F32)
-
-    @property
-    def sigma_(self) -> np.ndarray:
-        if not hasattr(self, "_log_variance"):
-            raise NotFittedError("this RBM is not fitted yet; sigma_ is not available")
-        view = self._sigma.view()
-        view.flags.writeable = False
-        return view
-
-    @sigma_.setter
-    def sigma_(self, value: Any) -> None:
-        if not hasattr(self, "weights_"):
-            raise NotFittedError("initialize or fit the RBM before setting sigma_")
-        sigma = np.asarray(value, dtype=F32).reshape(-1)
-        if sigma.shape != (self.n_features_in_,):
-            raise ParameterError(
-                f"sigma_ must have shape ({self.n_features_in_},); got {np.shape(value)}"
-            )
-        if not (np.isfinite(sigma).all() and (sigma > 0).all()):
-            raise ParameterError("sigma_ must be finite and positive")
-        if not self._visible_units.has_variance and not np.all(sigma == 1):
-            raise ParameterError("binary visibles have sigma_ = 1; it cannot be changed")
-        if self._tied:
-            per_position = sigma.reshape(self._group_shape)
-            if not np.all(per_position == per_position[0]):
-                raise ParameterError(
-                    "with tie_variance='band' every context position of a band must share "
-                    "one sigma"
-                )
-            sigma = per_position[0]
-        self._log_variance = (2.0 * np.log(sigma)).astype(F32)
-        self._sync_variance()
-
-    def _params(self) -> dict[str, np.ndarray]:
-        """The learned arrays by their state names (z grouped as learned)."""
-        return {"weights": self.weights_, "visible_bias": self.visible_bias_,
-                "hidden_bias": self.hidden_bias_, "log_variance": self._log_variance}
-
-    def _parameters_finite(self) -> bool:
-        return all(bool(np.isfinite(a).all()) for a in self._params().values())
-
     # ---------------------------------------------------------------- initialisation
 
     def initialize(self, n_visible: int, *, visible_mean: Any = None) -> RBM:
@@ -552,20 +411,6 @@ class RBM:
 
     # ---------------------------------------------------------------- inference
 
-    def _make_rng(self, rng: Any) -> np.random.Generator:
-        if rng is None:
-            return np.random.default_rng(self.seed)
-        if isinstance(rng, np.random.Generator):
-            return rng
-        if is_int(rng) and rng >= 0:
-            return np.random.default_rng(int(rng))
-        raise ParameterError(f"rng must be None, an integer ≥ 0 or a numpy Generator; got {rng!r}")
-
-    def _hidden_input(self, v: np.ndarray) -> np.ndarray:
-        out = self._visible_units.scale(v, self._inv_var) @ self.weights_
-        out += self.hidden_bias_
-        return out
-
     def transform(self, X: Any) -> np.ndarray:
         """Mean hidden activation for each row of X.
 
@@ -597,267 +442,6 @@ class RBM:
     def fit_transform(self, X: Any, y: Any = None) -> np.ndarray:
         """Fit to X, then return ``transform(X)``; see :meth:`fit` and :meth:`transform`."""
         return self.fit(X, y).transform(X)
-
-    def mean_visible(self, H: Any) -> np.ndarray:
-        """Conditional mean of the visibles given hidden states.
-
-        Parameters
-        ----------
-        H : array-like of shape (n_samples, n_hidden)
-
-        Returns
-        -------
-        V : ndarray of shape (n_samples, n_visible), float32
-            b + H Wᵀ (Gaussian) or sigmoid(b + H Wᵀ) (binary).
-        """
-        self._check_fitted()
-        H = self._check_input(H, name="H", width=self.n_hidden, what="hidden units")
-        out = H @ self.weights_.T
-        out += self.visible_bias_
-        return self._visible_units.mean(out)
-
-    def sample_hidden(self, X: Any, *, rng: Any = None) -> np.ndarray:
-        """Draw hidden states given visibles.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-        rng : None, int or numpy.random.Generator, default=None
-            None uses a new generator seeded from ``seed`` (so repeated calls repeat the
-            draw); pass a Generator to continue one stream.  Training's generator is
-            never touched.
-
-        Returns
-        -------
-        H : ndarray of shape (n_samples, n_hidden), float32
-        """
-        self._check_fitted()
-        X = self._check_input(X)
-        gen = self._make_rng(rng)
-        x = self._hidden_input(X)
-        out = np.empty_like(x)
-        return self._hidden_units.sample(x, out, np.empty_like(x), np.empty_like(x), gen)
-
-    def sample_visible(self, H: Any, *, rng: Any = None) -> np.ndarray:
-        """Draw visibles given hidden states: N(b + HWᵀ, σ²) or Bernoulli(sigmoid(b + HWᵀ)).
-
-        Parameters
-        ----------
-        H : array-like of shape (n_samples, n_hidden)
-        rng : None, int or numpy.random.Generator, default=None
-            As for :meth:`sample_hidden`.
-
-        Returns
-        -------
-        V : ndarray of shape (n_samples, n_visible), float32
-        """
-        gen = self._make_rng(rng)
-        mean = self.mean_visible(H)
-        noise = np.empty_like(mean)
-        return self._visible_units.sample(mean, self._sigma, gen, noise,
-                                          np.empty(noise.size // 2 + 1, F32), noise)
-
-    def gibbs(self, X: Any, *, steps: int = 1, rng: Any = None) -> np.ndarray:
-        """Run block Gibbs sampling v → h → v from X.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-            Starting visibles.
-        steps : int, default=1
-            Number of full v → h → v steps, ≥ 1.
-        rng : None, int or numpy.random.Generator, default=None
-            As for :meth:`sample_hidden`.
-
-        Returns
-        -------
-        V : ndarray of shape (n_samples, n_visible), float32
-            The visibles after the last step.
-        """
-        if not is_int(steps) or steps < 1:
-            raise ParameterError(f"steps must be an integer ≥ 1; got {steps!r}")
-        self._check_fitted()
-        v = self._check_input(X)
-        gen = self._make_rng(rng)
-        for _ in range(steps):
-            v = self.sample_visible(self.sample_hidden(v, rng=gen), rng=gen)
-        return v
-
-    def free_energy(self, X: Any) -> np.ndarray:
-        """Free energy F(v) = −log Σ_h exp(−E(v, h)) of each row.
-
-        Gaussian: Σᵢ (vᵢ − bᵢ)²/(2σᵢ²) − Σⱼ φ(xⱼ); binary: −b·v − Σⱼ φ(xⱼ), with
-        φ = softplus (binary), Σₙ₌₁ᴺ softplus(x − n + 0.5) (stepped) or the same sum
-        to infinity within 1e-6 per unit (relu).  No additive constant is dropped:
-        p(v) = exp(−F(v)) / Z with Z = ∫ Σ_h exp(−E).
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-
-        Returns
-        -------
-        F : ndarray of shape (n_samples,), float32
-        """
-        self._check_fitted()
-        X = self._check_input(X)
-        out = np.empty(X.shape[0], F32)
-        for start in range(0, X.shape[0], _TRANSFORM_CHUNK):
-            v = X[start:start + _TRANSFORM_CHUNK]
-            phi = self._hidden_units.log_partial(self._hidden_input(v))
-            hidden_term = phi.sum(axis=1, dtype=np.float64).astype(F32)
-            visible_term = self._visible_units.energy(v, self.visible_bias_, self._inv_var)
-            out[start:start + v.shape[0]] = visible_term - hidden_term
-        return out
-
-    def reconstruction_error(self, X: Any) -> float:
-        """Mean squared error of the mean-field reconstruction, in the units of X.
-
-        The reconstruction is ``mean_visible(transform(X))``.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-
-        Returns
-        -------
-        error : float
-        """
-        self._check_fitted()
-        X = self._check_input(X)
-        total = 0.0
-        for start in range(0, X.shape[0], _TRANSFORM_CHUNK):
-            v = X[start:start + _TRANSFORM_CHUNK]
-            difference = self.mean_visible(self.transform(v))
-            difference -= v
-            total += float(np.vdot(difference, difference))
-        return total / X.size
-
-    def exact_log_partition(self) -> float:
-        """log Z by enumerating all 2^n_hidden hidden states (binary hiddens, n_hidden ≤ 20).
-
-        Gaussian visibles integrate in closed form:
-        log Z = Σᵢ ½ log(2πσᵢ²) + log Σ_h exp(c·h + Σᵢ ((bᵢ + (Wh)ᵢ)² − bᵢ²)/(2σᵢ²));
-        binary visibles: log Z = log Σ_h exp(c·h + Σᵢ softplus(bᵢ + (Wh)ᵢ)).
-        Computed in float64.
-
-        Returns
-        -------
-        log_z : float
-        """
-        self._check_fitted()
-        if self.hidden != "binary" or self.n_hidden > EXACT_MAX_HIDDEN:
-            raise ParameterError(
-                f"exact_log_partition needs binary hiddens and n_hidden ≤ {EXACT_MAX_HIDDEN}; "
-                f"got hidden={self.hidden!r}, n_hidden={self.n_hidden}"
-            )
-        weights = self.weights_.astype(np.float64)
-        b = self.visible_bias_.astype(np.float64)
-        c = self.hidden_bias_.astype(np.float64)
-        var = self._sigma.astype(np.float64) ** 2
-        gaussian = self._visible_units.has_variance
-        n_states = 1 << self.n_hidden
-        bits = np.arange(self.n_hidden)
-        log_terms = []
-        for start in range(0, n_states, 1 << 16):
-            codes = np.arange(start, min(start + (1 << 16), n_states))
-            states = ((codes[:, None] >> bits) & 1).astype(np.float64)
-            mean = states @ weights.T + b
-            if gaussian:
-                term = states @ c + ((mean**2 - b**2) / (2 * var)).sum(axis=1)
-            else:
-                term = states @ c + np.logaddexp(0.0, mean).sum(axis=1)
-            log_terms.append(term)
-        stacked = np.concatenate(log_terms)
-        top = stacked.max()
-        log_z = float(top + np.log(np.exp(stacked - top).sum()))
-        if gaussian:
-            log_z += float(0.5 * np.log(2 * np.pi * var).sum())
-        return log_z
-
-    # ---------------------------------------------------------------- gradients
-
-    def cd_gradient(self, X: Any, *, n_steps: int | None = None,
-                    rng: Any = None) -> dict[str, np.ndarray]:
-        """Contrastive-divergence estimate of the log-likelihood gradient at X.
-
-        Runs the same code as a training update (chains start at the rows of X;
-        ``persistent`` is ignored), without applying it, without weight decay and
-        without the sparsity cost.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-            Data; one negative chain per row.
-        n_steps : int or None, default=None
-            Gibbs steps; None uses the ``n_steps`` hyperparameter.
-        rng : None, int or numpy.random.Generator, default=None
-            As for :meth:`sample_hidden`.
-
-        Returns
-        -------
-        gradient : dict of str to ndarray
-            Ascent directions ``weights`` (n_visible, n_hidden), ``visible_bias``
-            (n_visible,), ``hidden_bias`` (n_hidden,) and, for Gaussian visibles,
-            ``log_variance`` with respect to the independent z parameters: (n_bands,)
-            with ``tie_variance="band"`` and a layout, (n_visible,) otherwise.
-        """
-        self._check_fitted()
-        X = self._check_input(X)
-        steps = self.n_steps if n_steps is None else n_steps
-        if not is_int(steps) or steps < 1:
-            raise ParameterError(f"n_steps must be an integer ≥ 1; got {steps!r}")
-        # a state of its own: training's generator, chains and buffers stay untouched
-        state = TrainingState.fresh(self._make_rng(rng), self._params())
-        plan = StepPlan(rate=1.0, n_steps=int(steps),
-                        variance=self._visible_units.has_variance)
-        grads = contrastive_step(self, state, X, plan, tally=None)
-        return self._gradient_dict(grads[0].copy(), *grads[1:])
-
-    @staticmethod
-    def _gradient_dict(weights: np.ndarray, visible: np.ndarray, hidden: np.ndarray,
-                       log_variance: np.ndarray | None) -> dict[str, np.ndarray]:
-        result = {"weights": weights, "visible_bias": visible, "hidden_bias": hidden}
-        if log_variance is not None:
-            result["log_variance"] = log_variance
-        return result
-
-    def free_energy_gradient(self, X: Any) -> dict[str, np.ndarray]:
-        """Mean over rows of the analytic derivatives of :meth:`free_energy`.
-
-        Uses the same phase-combination code as training, with the exact conditional
-        mean dφ/dx of the free energy as hidden expectation (for relu:
-        Σₙ sigmoid(x − n + 0.5) over the same copies as the free energy).
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_visible)
-
-        Returns
-        -------
-        gradient : dict of str to ndarray
-            ∂F/∂W (n_visible, n_hidden), ∂F/∂b, ∂F/∂c and, for Gaussian visibles,
-            ∂F/∂z grouped as in :meth:`cd_gradient`.
-        """
-        self._check_fitted()
-        X = self._check_input(X)
-        n = X.shape[0]
-        scaled = self._visible_units.scale(X, self._inv_var)
-        x = scaled @ self.weights_
-        x += self.hidden_bias_
-        expectation = self._hidden_units.expectation(x)
-        expectation *= F32(1.0 / n)
-        deviation = X - self.visible_bias_
-        np.square(deviation, out=deviation)
-        grad_weights = np.empty_like(self.weights_)
-        phases = Phases(scaled, expectation, n_pos=n, pos_sum=X.sum(axis=0),
-                        pos_sq=deviation.sum(axis=0))
-        grads = combine_phases(self, phases, grad_weights, rate=1.0,
-                               variance=self._visible_units.has_variance)
-        # the phase statistics are −∂F/∂θ
-        grad_visible, grad_hidden, grad_log_var = grads
-        return self._gradient_dict(-grad_weights, -grad_visible, -grad_hidden,
-                                   None if grad_log_var is None else -grad_log_var)
 
     # ---------------------------------------------------------------- training
 
@@ -908,7 +492,7 @@ class RBM:
             first = next(iter(make_batches()), None)
             if first is None:
                 raise ParameterError("make_batches() yielded no minibatches")
-            first = _as_float32_matrix(first, name="minibatch 0")
+            first = as_float32_matrix(first, name="minibatch 0")
             self.initialize(first.shape[1], visible_mean=first.mean(axis=0))
         self._check_fitted()
         self._training_state()
@@ -935,7 +519,7 @@ class RBM:
         self : RBM
         """
         self._check_params()
-        X = _as_float32_matrix(X, name="X")
+        X = as_float32_matrix(X, name="X")
         if not (self.warm_start and hasattr(self, "weights_")):
             self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
         else:
@@ -971,7 +555,7 @@ class RBM:
         self : RBM
         """
         self._check_params()
-        X = _as_float32_matrix(X, name="X")
+        X = as_float32_matrix(X, name="X")
         if not hasattr(self, "weights_"):
             self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
         X = self._check_input(X)
@@ -1003,17 +587,9 @@ class RBM:
         self._check_fitted()
         train = self._training_state()
         state: dict[str, Any] = {k: v.copy() for k, v in self._params().items()}
-        for name, value in train.velocity.items():
-            state[f"velocity_{name}"] = value.copy()
-        if train.chain is not None:
-            state["chain"] = train.chain.copy()
-        if train.sparsity_estimate is not None:
-            state["sparsity_estimate"] = train.sparsity_estimate.copy()
-        state["rng"] = json_safe(train.rng.bit_generator.state)
+        state.update(train.to_dict(json_safe))
         state["epoch"] = int(self.n_epochs_)
         state["learning_rate_scale"] = float(self.learning_rate_scale_)
-        state["reference_error"] = train.reference_error
-        state["chain_needs_start"] = bool(train.chain_needs_start)
         state["history"] = json_safe(self.history_)
         return state
 
@@ -1043,48 +619,17 @@ class RBM:
                 f"{self.n_hidden}"
             )
         self.initialize(weights.shape[0])
+        params = {name: check_array(state[name], name, current.shape)
+                  for name, current in self._params().items()}
         train = self._training_state()
-        params = self._params()
-        for name in PARAMETER_NAMES:
-            for key, target in ((name, params[name]), (f"velocity_{name}",
-                                                      train.velocity[name])):
-                value = np.asarray(state[key], dtype=F32)
-                if value.shape != target.shape:
-                    raise ParameterError(f"state[{key!r}] has shape {value.shape}; expected "
-                                         f"{target.shape}")
-                if not np.isfinite(value).all():
-                    raise ParameterError(f"state[{key!r}] holds NaN or infinite values")
-        self.weights_ = weights
-        self.visible_bias_ = np.array(state["visible_bias"], dtype=F32)
-        self.hidden_bias_ = np.array(state["hidden_bias"], dtype=F32)
-        self._log_variance = np.array(state["log_variance"], dtype=F32)
+        train.load(state, chain_shape=(self.batch_size, self.n_hidden))
+        self.weights_, self.visible_bias_ = params["weights"], params["visible_bias"]
+        self.hidden_bias_, self._log_variance = params["hidden_bias"], params["log_variance"]
         self._sync_variance()
-        train.velocity = {name: np.array(state[f"velocity_{name}"], dtype=F32, order="C")
-                          for name in PARAMETER_NAMES}
-        self._set_chains(train, state)
-        try:
-            train.rng.bit_generator.state = dict(state["rng"])
-        except (TypeError, ValueError, KeyError) as exc:
-            raise ParameterError(f"state['rng'] is not a generator state for "
-                                 f"{type(train.rng.bit_generator).__name__}: {exc}") from None
         self.n_epochs_ = int(state["epoch"])
         self.learning_rate_scale_ = float(state.get("learning_rate_scale", 1.0))
-        reference = state.get("reference_error")
-        train.reference_error = None if reference is None else float(reference)
         self.history_ = [dict(entry) for entry in state.get("history", [])]
         return self
-
-    def _set_chains(self, train: TrainingState, state: Mapping[str, Any]) -> None:
-        chain = state.get("chain")
-        if chain is not None:
-            chain = np.array(chain, dtype=F32, order="C")
-            if chain.shape != (self.batch_size, self.n_hidden):
-                raise ParameterError(f"state['chain'] has shape {chain.shape}; expected "
-                                     f"{(self.batch_size, self.n_hidden)}")
-        train.chain = chain
-        train.chain_needs_start = bool(state.get("chain_needs_start", False))
-        estimate = state.get("sparsity_estimate")
-        train.sparsity_estimate = None if estimate is None else np.array(estimate, dtype=F32)
 
     # ---------------------------------------------------------------- model files
 

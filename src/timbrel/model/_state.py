@@ -9,14 +9,16 @@ checkpoint.
 from __future__ import annotations
 
 import copy
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from .._errors import ParameterError
 from ._kernels import F32
 
-__all__ = ["PARAMETER_NAMES", "TrainingState", "Workspace"]
+__all__ = ["PARAMETER_NAMES", "TrainingState", "Workspace", "check_array"]
 
 #: The learned arrays, by the names the velocities, checkpoints and gradients use.
 PARAMETER_NAMES = ("weights", "visible_bias", "hidden_bias", "log_variance")
@@ -108,3 +110,52 @@ class TrainingState:
         self.sparsity_estimate = None if snap["sparsity_estimate"] is None \
             else snap["sparsity_estimate"].copy()
         self.rng.bit_generator.state = copy.deepcopy(snap["rng"])
+
+    def to_dict(self, json_safe: Any) -> dict[str, Any]:
+        """The state as :meth:`RBM.get_state` stores it (``json_safe`` makes the
+        generator's state JSON-able)."""
+        state: dict[str, Any] = {f"velocity_{k}": v.copy() for k, v in self.velocity.items()}
+        if self.chain is not None:
+            state["chain"] = self.chain.copy()
+        if self.sparsity_estimate is not None:
+            state["sparsity_estimate"] = self.sparsity_estimate.copy()
+        state["rng"] = json_safe(self.rng.bit_generator.state)
+        state["reference_error"] = self.reference_error
+        state["chain_needs_start"] = bool(self.chain_needs_start)
+        return state
+
+    def load(self, state: Mapping[str, Any], *, chain_shape: tuple[int, int]) -> None:
+        """Take velocities, chains, estimate, generator and reference from ``state``
+        (as :meth:`to_dict` wrote it); the velocities must have their present shapes."""
+        velocity = {}
+        for name, current in self.velocity.items():
+            key = f"velocity_{name}"
+            velocity[name] = check_array(state[key], key, current.shape)
+        chain = state.get("chain")
+        if chain is not None:
+            chain = np.array(chain, dtype=F32, order="C")
+            if chain.shape != chain_shape:
+                raise ParameterError(f"state['chain'] has shape {chain.shape}; expected "
+                                     f"{chain_shape}")
+        self.velocity = velocity
+        self.chain = chain
+        self.chain_needs_start = bool(state.get("chain_needs_start", False))
+        estimate = state.get("sparsity_estimate")
+        self.sparsity_estimate = None if estimate is None else np.array(estimate, dtype=F32)
+        try:
+            self.rng.bit_generator.state = dict(state["rng"])
+        except (TypeError, ValueError, KeyError) as exc:
+            raise ParameterError(f"state['rng'] is not a generator state for "
+                                 f"{type(self.rng.bit_generator).__name__}: {exc}") from None
+        reference = state.get("reference_error")
+        self.reference_error = None if reference is None else float(reference)
+
+
+def check_array(value: Any, key: str, shape: tuple[int, ...]) -> np.ndarray:
+    """``state[key]`` as a C-contiguous float32 array of ``shape`` with finite values."""
+    array = np.array(value, dtype=F32, order="C")
+    if array.shape != shape:
+        raise ParameterError(f"state[{key!r}] has shape {array.shape}; expected {shape}")
+    if not np.isfinite(array).all():
+        raise ParameterError(f"state[{key!r}] holds NaN or infinite values")
+    return array
