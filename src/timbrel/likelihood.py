@@ -85,7 +85,7 @@ from ._progress import progress_bar
 from .cache import FrameCache
 from .model import EXACT_MAX_HIDDEN, RBM
 from .model.units import BinaryHidden, HiddenUnits, SteppedHidden
-from .pipeline import load_pipeline
+from .pipeline import FeaturePipeline, load_pipeline
 from .windows import WindowBatches, check_config_against_cache, split_seed, window_sets
 
 __all__ = ["DEFAULT_CHAINS", "DEFAULT_TEMPERATURES", "EXACT_MAX_HIDDEN", "RELU_COPY_MARGIN",
@@ -606,6 +606,31 @@ def _score_set(rbm: RBM, path: _Path, batches: WindowBatches, max_windows: int,
     return tally
 
 
+def _is_training_cache(pipe: FeaturePipeline, frames: FrameCache) -> bool:
+    """Whether ``frames`` is the cache the model was trained on (same clip and frame
+    counts and band statistics as the model file records)."""
+    recorded = pipe.metadata.get("cache", {})
+    stats = frames.band_stats
+    return (recorded.get("n_clips") == len(frames)
+            and recorded.get("n_frames") == frames.n_frames
+            and np.allclose(stats.mean, pipe.band_mean, rtol=1e-6, atol=1e-6)
+            and np.allclose(stats.scale, pipe.band_scale, rtol=1e-6, atol=1e-6))
+
+
+def _window_sets(pipe: FeaturePipeline, frames: FrameCache, training_cache: bool
+                 ) -> list[tuple[str, WindowBatches]]:
+    """The trainer's training and validation windows, or every clip of another cache."""
+    rbm = pipe.rbm
+    if training_cache:
+        train_set, val_set = window_sets(frames, pipe.config, frames.band_stats,
+                                         seed=split_seed(rbm), batch_size=rbm.batch_size)
+        return [("train", train_set), ("validation", val_set)]
+    every = np.arange(len(frames))
+    return [("all clips", WindowBatches(frames, every, pipe, context=pipe.config.frontend.context,
+                                        batch_size=rbm.batch_size, chunk_frames=0,
+                                        max_frames=0))]
+
+
 def score(
     model: str | Path,
     cache: str | Path,
@@ -663,21 +688,8 @@ def score(
     check_config_against_cache(pipe.config, frames)
     rbm = pipe.rbm
     fe = pipe.config.frontend
-    recorded = pipe.metadata.get("cache", {})
-    cache_stats = frames.band_stats
-    training_cache = (recorded.get("n_clips") == len(frames)
-                      and recorded.get("n_frames") == frames.n_frames
-                      and np.allclose(cache_stats.mean, pipe.band_mean, rtol=1e-6, atol=1e-6)
-                      and np.allclose(cache_stats.scale, pipe.band_scale, rtol=1e-6, atol=1e-6))
-    if training_cache:
-        train_set, val_set = window_sets(frames, pipe.config, cache_stats, seed=split_seed(rbm),
-                                         batch_size=rbm.batch_size)
-        named = [("train", train_set), ("validation", val_set)]
-    else:
-        every = np.arange(len(frames))
-        named = [("all clips", WindowBatches(frames, every, pipe, context=fe.context,
-                                        batch_size=rbm.batch_size, chunk_frames=0,
-                                        max_frames=0))]
+    training_cache = _is_training_cache(pipe, frames)
+    named = _window_sets(pipe, frames, training_cache)
     # the base rate and copies do not enter the free energy, so a provisional path serves
     provisional = _annealing_path(rbm, np.zeros(rbm.n_features_in_), np.ones(rbm.n_features_in_),
                                   copies=1)
@@ -693,7 +705,8 @@ def score(
                               method=method, n_chains=n_chains, n_temperatures=n_temperatures,
                               seed=seed, progress=progress)
     gaussian = rbm.visible == "gaussian"
-    scale = np.asarray(cache_stats.scale if training_cache else pipe.band_scale, np.float64)
+    scale = np.asarray(frames.band_stats.scale if training_cache else pipe.band_scale,
+                       np.float64)
     log_jacobian = -fe.n_positions * float(np.log(scale).sum()) if gaussian else None
     sets = []
     for name, batches, tally in tallies:
