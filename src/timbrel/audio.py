@@ -30,11 +30,14 @@ __all__ = [
     "MIN_SAMPLE_RATE",
     "AudioInfo",
     "AudioItem",
+    "Resampler",
+    "array_blocks",
     "counted_blocks",
     "discover",
     "load",
     "read_blocks",
     "read_info",
+    "to_mono",
     "unreadable_reason",
 ]
 
@@ -336,11 +339,7 @@ def read_blocks(
     if channel >= info.channels:
         raise AudioReadError(name, f"has {info.channels} channel(s); channel {channel} requested")
     blocksize = max(1, math.ceil(block_seconds * info.sample_rate))
-    resampler = None
-    if info.sample_rate != sr:
-        import soxr  # deferred: only needed when rates differ
-
-        resampler = soxr.ResampleStream(info.sample_rate, sr, 1, dtype="float32", quality="HQ")
+    resampler = Resampler(info.sample_rate, sr)
     n_read = 0
     try:
         with open(path, "rb") as raw, sf.SoundFile(raw) as fh:
@@ -351,26 +350,118 @@ def read_blocks(
                     raise AudioReadError(name, f"decoding failed after {n_read} frames "
                                          f"({exc})") from None
                 last = block.shape[0] < blocksize
-                if block.shape[0]:
-                    n_read += block.shape[0]
-                    mono = block.mean(axis=1) if channel < 0 else block[:, channel]
-                    mono = np.ascontiguousarray(mono, dtype=np.float32)
-                    if not np.isfinite(mono).all():
-                        raise AudioReadError(name, "contains NaN or infinite samples")
-                    if resampler is not None:
-                        mono = resampler.resample_chunk(mono, last=last)
-                    if mono.size:
-                        yield mono
-                elif resampler is not None:
-                    tail = resampler.resample_chunk(np.zeros(0, np.float32), last=True)
-                    if tail.size:
-                        yield tail
+                n_read += block.shape[0]
+                mono = to_mono(block, channel)
+                if not np.isfinite(mono).all():
+                    raise AudioReadError(name, "contains NaN or infinite samples")
+                out = resampler.push(mono, last=last)
+                if out.size:
+                    yield out
                 if last:
                     break
     except (sf.LibsndfileError, RuntimeError) as exc:
         raise AudioReadError(name, _decoder_reason(exc)) from None
     if n_read == 0:
         raise AudioReadError(name, "holds no samples")
+
+
+def to_mono(block: np.ndarray, channel: int = -1) -> np.ndarray:
+    """One channel of a block of samples, as contiguous float32.
+
+    Parameters
+    ----------
+    block : np.ndarray, shape (n_samples,) or (n_samples, n_channels)
+        Samples as libsndfile and soundfile give them (frames by channels).
+    channel : int, default -1
+        ``-1`` averages the channels (in float32); ``k >= 0`` keeps channel ``k``.
+
+    Returns
+    -------
+    np.ndarray, shape (n_samples,), float32
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> to_mono(np.array([[1.0, 0.0], [0.5, 0.5]], np.float32))
+    array([0.5, 0.5], dtype=float32)
+    """
+    block = np.asarray(block, dtype=np.float32)
+    if block.ndim == 1:
+        block = block[:, None]
+    if block.ndim != 2:
+        raise ParameterError(f"audio must be (n_samples,) or (n_samples, n_channels); got "
+                             f"shape {block.shape}")
+    if channel >= block.shape[1]:
+        raise ParameterError(f"audio has {block.shape[1]} channel(s); channel {channel} "
+                             f"requested")
+    mono = block.mean(axis=1) if channel < 0 else block[:, channel]
+    return np.ascontiguousarray(mono, dtype=np.float32)
+
+
+class Resampler:
+    """Streamed high-quality resampling (soxr "HQ"), or nothing when the rates agree.
+
+    soxr's stream gives the same samples however the input is cut into pieces, so a
+    file, an array and a live stream resampled through this class agree exactly.
+
+    Parameters
+    ----------
+    sr_in, sr_out : int > 0
+        Input and output sample rates.
+    """
+
+    def __init__(self, sr_in: int, sr_out: int) -> None:
+        if sr_in <= 0 or sr_out <= 0:
+            raise ParameterError(f"sample rates must be positive; got {sr_in} and {sr_out}")
+        self._stream = None
+        if sr_in != sr_out:
+            import soxr  # deferred: only needed when rates differ
+
+            self._stream = soxr.ResampleStream(sr_in, sr_out, 1, dtype="float32",
+                                               quality="HQ")
+
+    def push(self, mono: np.ndarray, *, last: bool = False) -> np.ndarray:
+        """Resample the next piece (float32, 1-D); ``last`` flushes the filter's tail."""
+        if self._stream is None:
+            return mono
+        return self._stream.resample_chunk(mono, last=last)
+
+
+def array_blocks(y: np.ndarray, sr_in: int, *, sr: int, channel: int = -1,
+                 block_seconds: float = BLOCK_SECONDS) -> Iterator[np.ndarray]:
+    """An in-memory signal cut, mixed down and resampled exactly as :func:`read_blocks`
+    treats a file with the same samples.
+
+    Parameters
+    ----------
+    y : np.ndarray, shape (n_samples,) or (n_samples, n_channels)
+        Finite samples (floating point).
+    sr_in : int > 0
+        Their sample rate.
+    sr, channel, block_seconds
+        As for :func:`read_blocks`.
+
+    Yields
+    ------
+    block : np.ndarray, shape (n,), float32
+    """
+    y = np.asarray(y)
+    if not np.issubdtype(y.dtype, np.floating):
+        raise ParameterError(f"audio must be floating point; got dtype {y.dtype}")
+    if not np.isfinite(y).all():
+        raise ParameterError("audio contains NaN or infinite samples")
+    blocksize = max(1, math.ceil(block_seconds * sr_in))
+    resampler = Resampler(sr_in, sr)
+    start = 0
+    while True:
+        block = y[start:start + blocksize]
+        start += blocksize
+        last = len(block) < blocksize
+        out = resampler.push(to_mono(block, channel), last=last)
+        if out.size:
+            yield out
+        if last:
+            return
 
 
 def load(path: str | Path, *, sr: int, channel: int = -1) -> np.ndarray:

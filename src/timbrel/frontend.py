@@ -18,6 +18,7 @@ from .config import FrontEndConfig, load_config
 __all__ = [
     "BandStats",
     "ContextStacker",
+    "FrameStream",
     "FrontEnd",
     "hz_to_mel",
     "mel_band_edges",
@@ -270,19 +271,11 @@ class FrontEnd:
         ------
         np.ndarray, shape (k, n_mels), float32
         """
-        c = self.config
-        hop, n_fft = c.hop_length, c.fft_length
-        carry = np.zeros(0, np.float32)
+        stream = FrameStream(self)
         for block in blocks:
-            block = self._check_signal(block, sr)
-            buf = np.concatenate([carry, block]) if carry.size else block
-            n = self.n_frames(buf.size)
-            if n:
-                yield self._frames_of(buf[: (n - 1) * hop + n_fft])
-                carry = buf[n * hop:]
-            else:
-                carry = buf
-            carry = np.array(carry, dtype=np.float32, copy=True)
+            frames = stream.push(self._check_signal(block, sr))
+            if len(frames):
+                yield frames
 
     def _check_signal(self, y: np.ndarray, sr: int) -> np.ndarray:
         if sr != self.config.sample_rate:
@@ -315,6 +308,49 @@ class FrontEnd:
             mel += np.float32(c.log_offset)
             np.log(mel, out=out[start:start + len(seg)])
         return out
+
+
+class FrameStream:
+    """Push-style :meth:`FrontEnd.frames`: give samples as they come, get the frames
+    whose window is now complete.
+
+    The concatenation of every output equals ``frontend.frames(all_samples, sr)``; the
+    samples after the last complete frame wait for the next push.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> fe = FrontEnd(sample_rate=16000)
+    >>> stream = FrameStream(fe)
+    >>> y = np.random.default_rng(0).standard_normal(4000).astype(np.float32)
+    >>> parts = [stream.push(y[i:i + 100]) for i in range(0, 4000, 100)]
+    >>> bool(np.allclose(np.concatenate(parts), fe.frames(y, 16000), atol=1e-5))
+    True
+    """
+
+    def __init__(self, frontend: FrontEnd) -> None:
+        self.frontend = frontend
+        self._carry = np.zeros(0, np.float32)
+
+    def push(self, y: np.ndarray) -> np.ndarray:
+        """Frames completed by the mono float32 samples ``y`` (at the front end's rate).
+
+        Returns
+        -------
+        np.ndarray, shape (k, n_mels), float32 (k may be 0)
+        """
+        fe = self.frontend
+        hop, n_fft = fe.config.hop_length, fe.config.fft_length
+        buf = np.concatenate([self._carry, y]) if self._carry.size else y
+        n = fe.n_frames(buf.size)
+        if n:
+            frames = fe._frames_of(buf[: (n - 1) * hop + n_fft])
+            carry = buf[n * hop:]
+        else:
+            frames = np.empty((0, fe.n_mels), np.float32)
+            carry = buf
+        self._carry = np.array(carry, dtype=np.float32, copy=True)
+        return frames
 
 
 def stack_context(frames: np.ndarray, context: int) -> np.ndarray:

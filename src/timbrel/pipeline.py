@@ -9,6 +9,7 @@ scoring and pictures read models through this module, never through the trainer.
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -16,10 +17,10 @@ import numpy as np
 
 from ._errors import ModelFileError
 from .config import Config
-from .frontend import mel_band_edges, stack_context, standardise
+from .frontend import ContextStacker, mel_band_edges, stack_context, standardise
 from .model import RBM, read_model_file
 
-__all__ = ["FeaturePipeline", "describe_model", "describe_text", "load_pipeline"]
+__all__ = ["FeaturePipeline", "FeatureRows", "describe_model", "describe_text", "load_pipeline"]
 
 
 class FeaturePipeline:
@@ -57,6 +58,25 @@ class FeaturePipeline:
         """Frames (n, n_mels) to standardised float32 frames, as in training."""
         return standardise(frames, self.band_mean, self.band_scale)
 
+    def stream_features(self, frame_blocks: Iterable[np.ndarray]) -> Iterator[np.ndarray]:
+        """Hidden activations of a clip given as consecutive blocks of log-mel frames.
+
+        Rows come out as their context windows complete; the concatenation equals
+        :meth:`features` of all the frames (memory stays flat in the clip's length).
+
+        Yields
+        ------
+        np.ndarray, shape (k, n_hidden), float32
+        """
+        rows = FeatureRows(self)
+        for frames in frame_blocks:
+            out = rows.push(frames)
+            if len(out):
+                yield out
+        rest = rows.finish()
+        if len(rest):
+            yield rest
+
     def features(self, frames: np.ndarray) -> np.ndarray:
         """Hidden activations of a whole clip's log-mel frames.
 
@@ -71,6 +91,32 @@ class FeaturePipeline:
         """
         windows = stack_context(self.standardise(frames), self.config.frontend.context)
         return self.rbm.transform(windows)
+
+
+class FeatureRows:
+    """Push-style features of one clip: frames in, the rows whose context is complete out.
+
+    Parameters
+    ----------
+    pipe : FeaturePipeline
+    """
+
+    def __init__(self, pipe: FeaturePipeline) -> None:
+        self.pipe = pipe
+        self._stacker = ContextStacker(pipe.config.frontend.context)
+
+    def _transform(self, windows: np.ndarray) -> np.ndarray:
+        if len(windows) == 0:
+            return np.empty((0, self.pipe.rbm.n_hidden), np.float32)
+        return self.pipe.rbm.transform(windows)
+
+    def push(self, frames: np.ndarray) -> np.ndarray:
+        """Features of the frames whose context window ``frames`` completes, (k, n_hidden)."""
+        return self._transform(self._stacker.push(self.pipe.standardise(frames)))
+
+    def finish(self) -> np.ndarray:
+        """Features of the clip's last ``context`` frames (the right edge repeated)."""
+        return self._transform(self._stacker.finish())
 
 
 def load_pipeline(path: str | Path) -> FeaturePipeline:
