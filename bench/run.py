@@ -14,7 +14,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 BENCHES = ["bench_startup", "bench_frontend", "bench_training", "bench_export", "bench_scale",
-           "bench_probe"]
+           "bench_stream", "bench_probe"]
 # keeps the whole run under about ten minutes on 2 cores (float64 scikit-learn is
 # informative only; run bench_training.py alone for it)
 EXTRA_ARGS = {"bench_training": ["--repeats", "3", "--no-float64", "--profile"]}
@@ -74,6 +74,12 @@ def _targets(results: dict) -> list[tuple[str, str, str, bool]]:
                          f"{r['audio_seconds'] / 3600:g} h of audio; stages alone "
                          f"{r['stage_bound_realtime']:.0f}x; --compression none "
                          f"{r['uncompressed']['realtime_factor']:.0f}x", t["met"]))
+    if "bench_stream" in results:
+        for r in results["bench_stream"]["runs"]:
+            rows.append((f"stream keeps up at {r['sample_rate']} Hz (p99 push < "
+                         f"{r['block_ms']:g} ms)", f"{r['push_ms_p99']:.2f} ms",
+                         f"{r['stream_realtime']:.0f}x realtime; batch path "
+                         f"{r['batch_realtime']:.0f}x, same rounds", r["keeps_up"]))
     if "bench_scale" in results:
         r = results["bench_scale"]
         s = r["speedup"]

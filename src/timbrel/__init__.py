@@ -32,6 +32,7 @@ from ._errors import (
 
 if TYPE_CHECKING:
     from .config import Config, FrontEndConfig, TrainingConfig, load_config
+    from .extractor import Extractor, load
     from .frontend import BandStats, FrontEnd, mel_filter_bank, stack_context
     from .model import RBM
 
@@ -42,6 +43,7 @@ _LAZY = {
     "BandStats": "frontend", "FrontEnd": "frontend", "mel_filter_bank": "frontend",
     "stack_context": "frontend",
     "RBM": "model",
+    "Extractor": "extractor", "load": "extractor",
 }
 
 
@@ -67,6 +69,7 @@ __all__ = [
     "ConfigError",
     "DivergenceError",
     "ExportError",
+    "Extractor",
     "FrontEnd",
     "FrontEndConfig",
     "ModelFileError",
@@ -77,6 +80,7 @@ __all__ = [
     "TrainingConfig",
     "WorkerError",
     "__version__",
+    "load",
     "load_config",
     "mel_filter_bank",
     "stack_context",

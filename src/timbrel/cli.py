@@ -281,6 +281,37 @@ def score_command(
     typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
 
 
+class Encoding(str, Enum):
+    """Raw PCM sample formats (little-endian)."""
+
+    s16 = "s16"
+    s32 = "s32"
+    f32 = "f32"
+
+
+@app.command("stream")
+def stream_command(
+    source: Annotated[str, typer.Argument(help="'-' for standard input (raw PCM).")],
+    model: Annotated[Path, typer.Option("--model", "-m", help="Model file from `timbrel fit`.")],
+    rate: Annotated[int, typer.Option("--rate", "-r", min=1, help="Sample rate of the PCM, Hz.")],
+    channels: Annotated[int, typer.Option("--channels", min=1, help="Interleaved channels.")
+                        ] = 1,
+    encoding: Annotated[Encoding, typer.Option(
+        "--encoding", help="Samples: s16 or s32 (signed integers) or f32 (floats).")
+    ] = Encoding.s16,
+    block_ms: Annotated[float, typer.Option(
+        "--block-ms", min=0.1, help="Audio read per step, milliseconds.")] = 10.0,
+) -> None:
+    """Features of live raw PCM on standard input, as an Arrow IPC stream on standard output."""
+    if source != "-":
+        raise typer.BadParameter("only '-' (standard input) is read", param_hint="SOURCE")
+    from .extractor import stream_pcm
+
+    n = stream_pcm(model, sys.stdin.buffer, sys.stdout.buffer, rate=rate, channels=channels,
+                   encoding=encoding.value, block_seconds=block_ms / 1000.0)
+    _err(f"{n} frames")
+
+
 @app.command("show")
 def show_command(
     audio: Annotated[Path, typer.Argument(help="Audio file to draw.")],
