@@ -40,6 +40,12 @@ so the same seed always gives the same samples. Output: 16 kHz mono 16-bit
 FLAC files in ``clips/`` and ``manifest.csv`` (``path,label,split``; path
 relative to this folder; a stratified, seeded 70/30 split).
 
+The station also keeps longer logs: ``soundscapes/`` holds six half-minute
+stretches of marsh in which 10 to 16 sources sound at random times, often
+overlapping, with the keeper's annotations in ``soundscapes/events.tsv``
+(``filename onset offset event_label``) and ``soundscapes/manifest.csv``
+(four ``train``, two ``test``), for frame-level event detection.
+
 Usage::
 
     python demo_audio/synthesise.py              # rewrite demo_audio/ in place
@@ -67,6 +73,10 @@ AMBIENCE_RMS_DBFS = (-60.0, -44.0)
 HISS_RMS_DBFS = -78.0
 DISTANT_SOURCE_CHANCE = 0.33
 DISTANT_SOURCE_DB = (-20.0, -12.0)  # relative to the labelled source's peak
+
+N_SOUNDSCAPES = 6  # 4 train, 2 test
+SOUNDSCAPE_SECONDS = 30.0
+SOUNDSCAPE_EVENTS = (10, 17)  # sources placed per soundscape, at random times
 
 Generator = Callable[[np.random.Generator, float], np.ndarray]
 
@@ -279,6 +289,74 @@ def make_clip(label: str, rng: np.random.Generator) -> np.ndarray:
     return clip.astype(np.float32)
 
 
+def _extent(event: np.ndarray, threshold: float = 0.02) -> tuple[int, int]:
+    """First and last sample (exclusive) where the event rises above ``threshold`` of its
+    peak: the span a listener would annotate."""
+    loud = np.flatnonzero(np.abs(event) >= threshold * np.max(np.abs(event)))
+    return int(loud[0]), int(loud[-1]) + 1
+
+
+def make_soundscape(rng: np.random.Generator, seconds: float = SOUNDSCAPE_SECONDS
+                    ) -> tuple[np.ndarray, list[tuple[float, float, str]]]:
+    """A stretch of marsh with several sources heard in turn and overlapping.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+    seconds : float
+        Length of the soundscape.
+
+    Returns
+    -------
+    audio : numpy.ndarray, shape (n_samples,), float32
+    events : list of (onset, offset, label)
+        Where each source sounds, in seconds (the span above 2 % of its peak), sorted.
+    """
+    n_samples = _seconds(seconds)
+    scape = marsh_ambience(rng, n_samples)
+    events = []
+    labels = list(SOURCES)
+    for _ in range(int(rng.integers(*SOUNDSCAPE_EVENTS))):
+        label = labels[int(rng.integers(len(labels)))]
+        event = _peak_normalise(SOURCES[label](rng, rng.uniform(1.0, 3.0)))
+        start = int(rng.integers(0, n_samples - event.shape[0]))
+        _place(scape, 10.0 ** (rng.uniform(*TARGET_PEAK_DBFS) / 20.0) * event, start)
+        first, last = _extent(event)
+        events.append((round((start + first) / SAMPLE_RATE, 3),
+                       round((start + last) / SAMPLE_RATE, 3), label))
+    return (scape / max(1.0, 1.05 * np.max(np.abs(scape)))).astype(np.float32), sorted(events)
+
+
+def synthesise_soundscapes(out_dir: Path, *, seed: int = DEFAULT_SEED) -> list[dict[str, str]]:
+    """Write the annotated soundscapes into ``out_dir / "soundscapes"``.
+
+    Files: ``scape_NN.flac``, ``manifest.csv`` (``path,split``) and ``events.tsv``
+    (``filename onset offset event_label``, tab-separated, with a header).
+
+    Returns
+    -------
+    rows : list of dict
+        The manifest rows.
+    """
+    folder = out_dir / "soundscapes"
+    folder.mkdir(parents=True, exist_ok=True)
+    rows, lines = [], ["filename\tonset\toffset\tevent_label"]
+    for index in range(N_SOUNDSCAPES):
+        rng = np.random.default_rng([seed, 9_000_000, index])
+        audio, events = make_soundscape(rng)
+        name = f"scape_{index:02d}.flac"
+        sf.write(folder / name, audio, SAMPLE_RATE, format="FLAC", subtype="PCM_16",
+                 compression_level=1.0)
+        rows.append({"path": name, "split": "test" if index >= N_SOUNDSCAPES - 2 else "train"})
+        lines += [f"{name}\t{onset:.3f}\t{offset:.3f}\t{label}" for onset, offset, label in events]
+    (folder / "events.tsv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    with open(folder / "manifest.csv", "w", newline="", encoding="utf-8") as handle:
+        writer = csv.DictWriter(handle, fieldnames=["path", "split"], lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+    return rows
+
+
 def synthesise(out_dir: Path, *, seed: int = DEFAULT_SEED) -> list[dict[str, str]]:
     """Write every clip and ``manifest.csv`` into ``out_dir``.
 
@@ -344,6 +422,9 @@ def main(argv: list[str] | None = None) -> None:
     rows = synthesise(arguments.out_dir, seed=arguments.seed)
     seconds = sum(sf.info(arguments.out_dir / row["path"]).duration for row in rows)
     print(f"wrote {len(rows)} clips ({seconds:.1f} s of audio) to {arguments.out_dir}")
+    scapes = synthesise_soundscapes(arguments.out_dir, seed=arguments.seed)
+    print(f"wrote {len(scapes)} annotated soundscapes of {SOUNDSCAPE_SECONDS:g} s to "
+          f"{arguments.out_dir / 'soundscapes'}")
 
 
 if __name__ == "__main__":
