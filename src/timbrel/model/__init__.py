@@ -30,7 +30,7 @@ The package imports nothing from timbrel but its error types and the atomic writ
 the front end, trainer and exporter build on it freely.
 """
 
-from ._estimator import EXACT_MAX_HIDDEN, RBM, ModelFile, read_model_file
+from ._estimator import EXACT_MAX_HIDDEN, RBM, ModelFile, rbm_from_parameters, read_model_file
 from ._files import (
     CHECKPOINT_FORMAT,
     FORMAT_NAME,
@@ -53,6 +53,7 @@ __all__ = [
     "RELU_WINDOW_COPIES",
     "DivergenceWarning",
     "ModelFile",
+    "rbm_from_parameters",
     "read_checkpoint",
     "read_model_file",
     "write_checkpoint",

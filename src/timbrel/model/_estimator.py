@@ -46,7 +46,7 @@ from ._params import is_int
 from ._queries import EXACT_MAX_HIDDEN, RBMQueries
 from ._state import PARAMETER_NAMES, TrainingState, check_array
 
-__all__ = ["EXACT_MAX_HIDDEN", "RBM", "ModelFile", "read_model_file"]
+__all__ = ["EXACT_MAX_HIDDEN", "RBM", "ModelFile", "rbm_from_parameters", "read_model_file"]
 
 _TRANSFORM_CHUNK = 8192
 
@@ -666,11 +666,7 @@ class RBM(RBMQueries):
             meta = json.loads(canonical_json(dict(meta)))
         except (TypeError, ValueError) as exc:
             raise ParameterError(f"metadata must be JSON-serialisable: {exc}") from None
-        # z is the learned parameter (grouped per band when tied); σ is stored too for
-        # readers of the file, and must agree with z on loading
-        params = {**self._params(),
-                  "log_variance": np.ascontiguousarray(self._log_variance, dtype=F32),
-                  "sigma": np.ascontiguousarray(self._sigma)}
+        params = self.parameter_arrays()
         hyper = self.get_params()
         if hyper["layout"] is not None:
             hyper["layout"] = [int(n) for n in hyper["layout"]]
@@ -683,6 +679,21 @@ class RBM(RBMQueries):
             "metadata": meta,
         }
         return write_model_archive(path, params, header, arrays)
+
+    def parameter_arrays(self) -> dict[str, np.ndarray]:
+        """The fitted parameters as a model file stores them.
+
+        Returns
+        -------
+        dict of str to ndarray
+            ``weights`` (n_visible, n_hidden), ``visible_bias``, ``hidden_bias``,
+            ``log_variance`` (z = log σ², grouped per band when tied: the learned
+            parameter) and ``sigma`` (n_visible,), all float32 (views, not copies).
+        """
+        self._check_fitted()
+        return {**self._params(),
+                "log_variance": np.ascontiguousarray(self._log_variance, dtype=F32),
+                "sigma": np.ascontiguousarray(self._sigma)}
 
     @classmethod
     def load(cls, path: str | os.PathLike[str]) -> RBM:
@@ -735,25 +746,9 @@ def read_model_file(path: str | os.PathLike[str]) -> ModelFile:
     {'note': 'x'}
     """
     archive = read_model_archive(path)
-    path = Path(path)
-    header, params = archive.header, archive.params
-    try:
-        rbm = RBM(**archive.hyperparameters)
-        rbm.initialize(int(header["n_features_in"]))
-    except (ParameterError, TypeError) as exc:
-        raise refuse(path, f"invalid hyperparameters ({exc})") from None
-    rbm.weights_ = np.ascontiguousarray(params["weights"])
-    rbm.visible_bias_ = np.ascontiguousarray(params["visible_bias"])
-    rbm.hidden_bias_ = np.ascontiguousarray(params["hidden_bias"])
-    log_var = params["log_variance"]
-    if log_var.shape != rbm._log_variance.shape:
-        raise refuse(path, f"array 'param.log_variance' has shape {log_var.shape}; expected "
-                           f"{rbm._log_variance.shape} for these hyperparameters")
-    rbm._log_variance = log_var.copy()
-    rbm._sync_variance()
-    if not np.array_equal(rbm._sigma, params["sigma"]):
-        raise refuse(path, "arrays 'param.sigma' and 'param.log_variance' disagree")
-    rbm._state = None  # made fresh, from the seed, if training goes on
+    header = archive.header
+    rbm = rbm_from_parameters(archive.hyperparameters, int(header["n_features_in"]),
+                              archive.params, source=path, prefix="param.")
     rbm.n_epochs_ = int(header.get("n_epochs", 0))
     rbm.learning_rate_scale_ = float(header.get("learning_rate_scale", 1.0))
     rbm.history_ = list(header.get("history", []))
@@ -761,3 +756,48 @@ def read_model_file(path: str | os.PathLike[str]) -> ModelFile:
     rbm.metadata_ = metadata
     return ModelFile(rbm=rbm, metadata=metadata, arrays=dict(archive.user),
                      checksum=archive.checksum)
+
+
+def rbm_from_parameters(hyperparameters: Mapping[str, Any], n_features_in: int,
+                        params: Mapping[str, np.ndarray], *, source: str | os.PathLike[str],
+                        prefix: str = "") -> RBM:
+    """A fitted :class:`RBM` from its hyperparameters and stored parameter arrays.
+
+    Parameters
+    ----------
+    hyperparameters : mapping
+        Keywords of :class:`RBM` (as :meth:`RBM.get_params` gives them).
+    n_features_in : int
+    params : mapping of str to ndarray
+        ``weights``, ``visible_bias``, ``hidden_bias``, ``log_variance`` and ``sigma``
+        (as :meth:`RBM.parameter_arrays` gives them), float32, checked by the caller.
+    source : str or path-like
+        The file they come from, named in errors.
+    prefix : str, default ""
+        How the file names the arrays (in errors).
+
+    Raises
+    ------
+    ModelFileError
+        Invalid hyperparameters, a variance array of the wrong size, or σ that
+        disagrees with the log-variances.
+    """
+    path = Path(source)
+    try:
+        rbm = RBM(**hyperparameters)
+        rbm.initialize(int(n_features_in))
+    except (ParameterError, TypeError) as exc:
+        raise refuse(path, f"invalid hyperparameters ({exc})") from None
+    rbm.weights_ = np.ascontiguousarray(params["weights"])
+    rbm.visible_bias_ = np.ascontiguousarray(params["visible_bias"])
+    rbm.hidden_bias_ = np.ascontiguousarray(params["hidden_bias"])
+    log_var = params["log_variance"]
+    if log_var.shape != rbm._log_variance.shape:
+        raise refuse(path, f"array '{prefix}log_variance' has shape {log_var.shape}; expected "
+                           f"{rbm._log_variance.shape} for these hyperparameters")
+    rbm._log_variance = log_var.copy()
+    rbm._sync_variance()
+    if not np.array_equal(rbm._sigma, params["sigma"]):
+        raise refuse(path, f"arrays '{prefix}sigma' and '{prefix}log_variance' disagree")
+    rbm._state = None  # made fresh, from the seed, if training goes on
+    return rbm
