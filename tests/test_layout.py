@@ -14,7 +14,7 @@ SRC = Path(__file__).parents[1] / "src" / "timbrel"
 #: Modules from the earliest stage to the latest; a module may import only those before it.
 STAGES = ["_errors", "_atomic", "_progress", "_threads", "_workers", "config", "audio",
           "frontend", "pooling", "events", "cache", "model", "windows", "training", "pipeline",
-          "extractor", "export", "evaluation", "likelihood", "plots", "cli"]
+          "extractor", "export", "evaluation", "detection", "likelihood", "plots", "cli"]
 
 #: Inside the model subpackage, the same rule, from the kernels to the estimator.
 MODEL_STAGES = ["_kernels", "units", "_params", "_state", "_step", "_update", "_guard",
