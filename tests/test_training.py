@@ -121,3 +121,39 @@ def test_unknown_model_key_is_refused(tmp_path, cache_dir):
     config = load_config(overrides=["frontend.n_mels=16", "model.hiden=4"])
     with pytest.raises(ConfigError, match="unknown key"):
         train(cache_dir, tmp_path / "m.npz", config=config)
+
+
+def test_a_layer_stacked_on_a_model_learns_from_its_features(tmp_path, cache_dir):
+    from timbrel.pipeline import describe_text, load_pipeline
+
+    base = tmp_path / "base.npz"
+    train(cache_dir, base, config=_config())
+    top = tmp_path / "top.npz"
+    result = train(cache_dir, top, config=_config(n_hidden=8, hidden="binary"), on=base)
+    assert [h["epoch"] for h in result.history] == [1, 2, 3]
+    below, stacked = load_pipeline(base), load_pipeline(top)
+    # the first layer travels inside the stacked file, bit for bit
+    for name in ("weights_", "visible_bias_", "hidden_bias_", "sigma_"):
+        assert np.array_equal(getattr(stacked.rbm, name), getattr(below.rbm, name)), name
+    assert stacked.top.n_features_in_ == 24 and stacked.top.n_hidden == 8
+    frames = FrameCache.open(cache_dir).clip_frames(1)
+    first = stacked.features(frames, "first")
+    np.testing.assert_array_equal(first, below.features(frames))
+    top_features = stacked.features(frames)
+    assert top_features.shape == (len(frames), 8)
+    assert np.all((top_features > 0) & (top_features < 1))  # binary units: probabilities
+    both = stacked.features(frames, "all")
+    np.testing.assert_array_equal(both, np.hstack([first, top_features]))
+    # the top layer sees each first-layer feature standardised over the training windows
+    layer = stacked.upper[0]
+    np.testing.assert_allclose(top_features, layer.rbm.transform(
+        (first - layer.input_mean) / layer.input_scale), rtol=1e-5, atol=1e-6)
+    text = describe_text(describe_model(top))
+    assert "stack      80 -> 24 relu -> 8 binary" in text
+    # a third layer on the stack keeps both lower layers
+    third = tmp_path / "third.npz"
+    train(cache_dir, third, config=_config(n_hidden=4), on=top)
+    deep = load_pipeline(third)
+    assert [u.rbm.n_hidden for u in deep.upper] == [8, 4]
+    np.testing.assert_allclose(deep.features(frames, "all")[:, :32],
+                               stacked.features(frames, "all"), rtol=1e-6)

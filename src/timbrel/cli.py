@@ -141,6 +141,10 @@ def fit_command(
     hidden: Annotated[Units | None, typer.Option("--hidden", help="Hidden-unit kind.")] = None,
     epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Training epochs.")] = None,
     seed: Annotated[int | None, typer.Option("--seed", help="Random seed.")] = None,
+    on: Annotated[Path | None, typer.Option(
+        "--on", exists=True, dir_okay=False,
+        help="A trained model to stack this one on (it learns from that model's features).")
+    ] = None,
     resume: Annotated[bool, typer.Option(
         "--resume", help="Continue from MODEL.checkpoint.npz after a crash or stop.")] = False,
     quiet: QuietOption = False,
@@ -153,7 +157,7 @@ def fit_command(
              "epochs": epochs, "seed": seed}
     result = train(cache, out, config=load_config(config) if config else None,
                    overrides=overrides or (),
-                   model={k: v for k, v in model.items() if v is not None},
+                   model={k: v for k, v in model.items() if v is not None}, on=on,
                    resume=resume, progress=not quiet, log=_err)
     typer.echo(result.line())
     typer.echo(f"model: {result.model_path}")

@@ -9,18 +9,38 @@ scoring and pictures read models through this module, never through the trainer.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from ._errors import ModelFileError
+from ._errors import ModelFileError, ParameterError
 from .config import Config
 from .frontend import ContextStacker, mel_band_edges, stack_context, standardise
-from .model import RBM, read_model_file
+from .model import RBM, ModelFile, rbm_from_parameters, read_model_file
+from .model._files import PARAM_ARRAYS
 
-__all__ = ["FeaturePipeline", "FeatureRows", "describe_model", "describe_text", "load_pipeline"]
+__all__ = ["LAYERS", "FeaturePipeline", "FeatureRows", "Layer", "describe_model", "describe_text",
+           "layer_arrays", "load_pipeline"]
+
+
+#: Which features a stacked pipeline gives: the top layer's, the first layer's (over the
+#: context windows), or every layer's side by side.
+LAYERS = ("top", "first", "all")
+
+
+@dataclasses.dataclass(frozen=True)
+class Layer:
+    """A layer stacked on the one below: its RBM and how it standardises its input."""
+
+    rbm: RBM
+    input_mean: np.ndarray   # (n_visible,) float32
+    input_scale: np.ndarray  # (n_visible,) float32
+
+    def transform(self, below: np.ndarray) -> np.ndarray:
+        """Features of this layer from the features of the layer below, (n, n_hidden)."""
+        return self.rbm.transform(standardise(below, self.input_mean, self.input_scale))
 
 
 class FeaturePipeline:
@@ -29,6 +49,9 @@ class FeaturePipeline:
     Attributes
     ----------
     rbm : RBM
+        The first layer: the model of the standardised context windows.
+    upper : list of Layer
+        Layers stacked on it, bottom to top (empty for one layer).
     config : Config
         The configuration stored in the model file.
     band_mean, band_scale : np.ndarray, shape (n_mels,), float32
@@ -36,12 +59,13 @@ class FeaturePipeline:
     checksum : str
         The model file's checksum.
     metadata : dict
-        Everything else the model file's metadata holds (history, cache summary, ...).
+        Everything else the model file's metadata holds (cache summary, ...).
     """
 
     def __init__(self, rbm: RBM, config: Config, band_mean: np.ndarray, band_scale: np.ndarray,
-                 checksum: str, metadata: dict[str, Any]) -> None:
+                 checksum: str, metadata: dict[str, Any], upper: Sequence[Layer] = ()) -> None:
         self.rbm = rbm
+        self.upper = list(upper)
         self.config = config
         self.band_mean = np.asarray(band_mean, np.float32)
         self.band_scale = np.asarray(band_scale, np.float32)
@@ -49,16 +73,37 @@ class FeaturePipeline:
         self.metadata = metadata
 
     @property
+    def top(self) -> RBM:
+        """The last layer's RBM (the first layer's when nothing is stacked)."""
+        return self.upper[-1].rbm if self.upper else self.rbm
+
+    def n_features(self, layer: str = "top") -> int:
+        """Features per frame that ``layer`` (see :data:`LAYERS`) gives."""
+        _check_layer(layer)
+        widths = [self.rbm.n_hidden, *(u.rbm.n_hidden for u in self.upper)]
+        return {"top": widths[-1], "first": widths[0], "all": sum(widths)}[layer]
+
+    def transform_windows(self, windows: np.ndarray, layer: str = "top") -> np.ndarray:
+        """Features of standardised context windows, (n, n_features(layer)), float32."""
+        _check_layer(layer)
+        out = [self.rbm.transform(windows)]
+        if layer != "first":
+            for upper in self.upper:
+                out.append(upper.transform(out[-1]))
+        return out[-1] if layer != "all" or len(out) == 1 else np.hstack(out)
+
+    @property
     def history(self) -> list[dict[str, Any]]:
         """The training history, one row per epoch (model files before the trainer kept
         one history carry it in their metadata)."""
-        return list(self.metadata.get("history", self.rbm.history_))
+        return list(self.metadata.get("history", self.top.history_))
 
     def standardise(self, frames: np.ndarray) -> np.ndarray:
         """Frames (n, n_mels) to standardised float32 frames, as in training."""
         return standardise(frames, self.band_mean, self.band_scale)
 
-    def stream_features(self, frame_blocks: Iterable[np.ndarray]) -> Iterator[np.ndarray]:
+    def stream_features(self, frame_blocks: Iterable[np.ndarray], layer: str = "top"
+                        ) -> Iterator[np.ndarray]:
         """Hidden activations of a clip given as consecutive blocks of log-mel frames.
 
         Rows come out as their context windows complete; the concatenation equals
@@ -68,7 +113,7 @@ class FeaturePipeline:
         ------
         np.ndarray, shape (k, n_hidden), float32
         """
-        rows = FeatureRows(self)
+        rows = FeatureRows(self, layer)
         for frames in frame_blocks:
             out = rows.push(frames)
             if len(out):
@@ -77,20 +122,22 @@ class FeaturePipeline:
         if len(rest):
             yield rest
 
-    def features(self, frames: np.ndarray) -> np.ndarray:
+    def features(self, frames: np.ndarray, layer: str = "top") -> np.ndarray:
         """Hidden activations of a whole clip's log-mel frames.
 
         Parameters
         ----------
         frames : np.ndarray, shape (n_frames, n_mels)
             Log-mel frames from :class:`timbrel.FrontEnd` with the model's settings.
+        layer : {"top", "first", "all"}, default "top"
+            Which layer's features, for a stacked model.
 
         Returns
         -------
-        np.ndarray, shape (n_frames, n_hidden), float32
+        np.ndarray, shape (n_frames, n_features(layer)), float32
         """
         windows = stack_context(self.standardise(frames), self.config.frontend.context)
-        return self.rbm.transform(windows)
+        return self.transform_windows(windows, layer)
 
 
 class FeatureRows:
@@ -99,16 +146,19 @@ class FeatureRows:
     Parameters
     ----------
     pipe : FeaturePipeline
+    layer : {"top", "first", "all"}, default "top"
     """
 
-    def __init__(self, pipe: FeaturePipeline) -> None:
+    def __init__(self, pipe: FeaturePipeline, layer: str = "top") -> None:
+        _check_layer(layer)
         self.pipe = pipe
+        self.layer = layer
         self._stacker = ContextStacker(pipe.config.frontend.context)
 
     def _transform(self, windows: np.ndarray) -> np.ndarray:
         if len(windows) == 0:
-            return np.empty((0, self.pipe.rbm.n_hidden), np.float32)
-        return self.pipe.rbm.transform(windows)
+            return np.empty((0, self.pipe.n_features(self.layer)), np.float32)
+        return self.pipe.transform_windows(windows, self.layer)
 
     def push(self, frames: np.ndarray) -> np.ndarray:
         """Features of the frames whose context window ``frames`` completes, (k, n_hidden)."""
@@ -143,10 +193,79 @@ def load_pipeline(path: str | Path) -> FeaturePipeline:
         raise ModelFileError(f"{path}: not a trained timbrel pipeline (missing {exc})") from None
     if band_mean.shape != (config.frontend.n_mels,) or band_scale.shape != band_mean.shape:
         raise ModelFileError(f"{path}: band statistics do not match {config.frontend.n_mels} bands")
-    if model.rbm.n_features_in_ != config.frontend.n_visible:
-        raise ModelFileError(f"{path}: model has {model.rbm.n_features_in_} visible units but its "
+    layers = _stacked_layers(path, model) if "stack" in meta else [model.rbm]
+    first, upper = layers[0], [_layer(path, model, i + 2, rbm) for i, rbm in
+                               enumerate(layers[1:])]
+    if first.n_features_in_ != config.frontend.n_visible:
+        raise ModelFileError(f"{path}: model has {first.n_features_in_} visible units but its "
                              f"front end gives {config.frontend.n_visible}")
-    return FeaturePipeline(model.rbm, config, band_mean, band_scale, model.checksum, meta)
+    return FeaturePipeline(first, config, band_mean, band_scale, model.checksum, meta, upper)
+
+
+def _check_layer(layer: str) -> None:
+    if layer not in LAYERS:
+        raise ParameterError(f"layer {layer!r} is not one of {', '.join(LAYERS)}")
+
+
+def layer_arrays(pipe: FeaturePipeline) -> tuple[list[dict[str, Any]], dict[str, np.ndarray]]:
+    """How a model file stores ``pipe``'s layers when a new layer is stacked on it.
+
+    Returns
+    -------
+    stack : list of dict
+        ``hyperparameters`` and ``n_features_in`` of each layer, bottom to top (the
+        model file's ``stack`` metadata).
+    arrays : dict of str to ndarray
+        ``layerK.NAME`` for each layer K (from 1) and parameter NAME, and
+        ``layerK.input_mean`` / ``layerK.input_scale`` for K >= 2.
+    """
+    rbms = [pipe.rbm, *(u.rbm for u in pipe.upper)]
+    stack, arrays = [], {}
+    for k, rbm in enumerate(rbms, start=1):
+        hyper = rbm.get_params()
+        if hyper["layout"] is not None:
+            hyper["layout"] = [int(n) for n in hyper["layout"]]
+        stack.append({"hyperparameters": hyper, "n_features_in": int(rbm.n_features_in_)})
+        arrays.update({f"layer{k}.{name}": a for name, a in rbm.parameter_arrays().items()})
+    for k, upper in enumerate(pipe.upper, start=2):
+        arrays[f"layer{k}.input_mean"] = upper.input_mean
+        arrays[f"layer{k}.input_scale"] = upper.input_scale
+    return stack, arrays
+
+
+def _stacked_layers(path: str | Path, model: ModelFile) -> list[RBM]:
+    """The layers of a stacked model file: those stored under it, then its own RBM."""
+    layers = []
+    try:
+        for k, entry in enumerate(model.metadata["stack"], start=1):
+            params = {name: model.arrays[f"layer{k}.{name}"] for name in PARAM_ARRAYS}
+            hyper = dict(entry["hyperparameters"])
+            if hyper.get("layout") is not None:
+                hyper["layout"] = tuple(hyper["layout"])
+            layers.append(rbm_from_parameters(hyper, entry["n_features_in"], params,
+                                              source=path, prefix=f"user.layer{k}."))
+    except (KeyError, TypeError) as exc:
+        raise ModelFileError(f"{path}: a stacked model without its lower layers "
+                             f"(missing {exc})") from None
+    for below, above in zip(layers, [*layers[1:], model.rbm], strict=True):
+        if below.n_hidden != above.n_features_in_:
+            raise ModelFileError(f"{path}: a layer of {above.n_features_in_} inputs sits on "
+                                 f"one of {below.n_hidden} units")
+    return [*layers, model.rbm]
+
+
+def _layer(path: str | Path, model: ModelFile, k: int, rbm: RBM) -> Layer:
+    """Layer ``k`` (from 2) with its input statistics; the top's are the file's own."""
+    top = k == len(model.metadata.get("stack", [])) + 1
+    key = "" if top else f"layer{k}."
+    try:
+        mean, scale = model.arrays[f"{key}input_mean"], model.arrays[f"{key}input_scale"]
+    except KeyError as exc:
+        raise ModelFileError(f"{path}: layer {k} lacks its input statistics ({exc})") from None
+    if mean.shape != (rbm.n_features_in_,) or scale.shape != mean.shape:
+        raise ModelFileError(f"{path}: layer {k}'s input statistics do not match its "
+                             f"{rbm.n_features_in_} inputs")
+    return Layer(rbm, np.asarray(mean, np.float32), np.asarray(scale, np.float32))
 
 
 def describe_model(path: str | Path, pipe: FeaturePipeline | None = None) -> dict[str, Any]:
@@ -193,6 +312,9 @@ def describe_model(path: str | Path, pipe: FeaturePipeline | None = None) -> dic
             for b in range(fe.n_mels)],
         "weight_norm_range": [float(np.linalg.norm(weights, axis=0).min()),
                               float(np.linalg.norm(weights, axis=0).max())],
+        "layers": [{"n_visible": int(r.n_features_in_), "n_hidden": int(r.n_hidden),
+                    "hidden": r.hidden, "visible": r.visible}
+                   for r in [rbm, *(u.rbm for u in pipe.upper)]],
     }
 
 
@@ -209,6 +331,11 @@ def describe_text(summary: dict[str, Any]) -> str:
         f"({s['training'].get('n_validation_clips', '?')} held out), "
         f"{s['training'].get('n_frames', '?')} frames",
     ]
+    if len(s.get("layers", [])) > 1:
+        lines.append("stack      " + " -> ".join(
+            [str(s["n_visible"]), *(f"{layer['n_hidden']} {layer['hidden']}"
+                                    for layer in s["layers"])])
+                     + "  (the epochs and figures below are the top layer's)")
     if last:
         lines.append(f"last epoch recon {last.get('recon_error', float('nan')):.4f} train, "
                      f"{last.get('val_recon_error') or float('nan'):.4f} validation; "

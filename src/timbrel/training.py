@@ -16,7 +16,7 @@ import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -26,9 +26,16 @@ from ._errors import CacheError, ConfigError, ModelFileError, ParameterError, Ti
 from ._progress import progress_bar
 from .cache import FrameCache
 from .config import Config
-from .frontend import BandStats
+from .frontend import BandStats, standardise
 from .model import CONSTRAINTS, RBM, read_checkpoint, write_checkpoint
-from .windows import WindowBatches, check_config_against_cache, split_seed, window_sets
+from .pipeline import FeaturePipeline, layer_arrays, load_pipeline
+from .windows import (
+    Standardiser,
+    WindowBatches,
+    check_config_against_cache,
+    split_seed,
+    window_sets,
+)
 
 __all__ = [
     "TrainResult",
@@ -103,6 +110,7 @@ def train(
     config: Config | None = None,
     overrides: Iterable[str] = (),
     model: Mapping[str, Any] | None = None,
+    on: str | Path | None = None,
     resume: bool = False,
     progress: bool = False,
     log: Callable[[str], None] | None = None,
@@ -124,6 +132,11 @@ def train(
         :func:`timbrel.config.load_config`).
     model : mapping, optional
         ``[model]`` keys set last, e.g. ``{"n_hidden": 512, "seed": 0}``.
+    on : str or Path, optional
+        A trained model file to stack this model on: the new layer learns from the
+        features that model gives of the cache's windows (its front end and context are
+        used, each feature standardised over the training windows), and the written
+        file holds every layer (``timbrel export --layer`` chooses which to export).
     resume : bool, default False
         Continue from ``OUT.checkpoint.npz``. A resumed run ends with the same
         parameters as an uninterrupted one with the same data, config and seed.
@@ -143,24 +156,81 @@ def train(
     t0 = time.perf_counter()
     say = log or (lambda text: None)
     out = _prepare_output(Path(out))
-    cache, config = _open_cache(cache_path, config, overrides, model or {}, say)
-    stats = cache.band_stats
+    below = load_pipeline(on) if on is not None else None
+    cache, config = _open_cache(cache_path, config, overrides, model or {}, say, below)
     fe = config.frontend
-    rbm = model_from_config(config, layout=(fe.n_positions, fe.n_mels))
+    stats: Standardiser = cache.band_stats if below is None else below
+    band_mean, band_scale = ((cache.band_stats.mean, cache.band_stats.scale) if below is None
+                             else (below.band_mean, below.band_scale))
+    arrays: dict[str, np.ndarray] = {"band_mean": np.asarray(band_mean, np.float64),
+                                     "band_scale": np.asarray(band_scale, np.float64)}
+    rbm = model_from_config(config, layout=None if below else (fe.n_positions, fe.n_mels))
     seed = split_seed(rbm)
-    train_batches, val_batches = window_sets(cache, config, stats, seed=seed,
-                                             batch_size=rbm.batch_size)
-    start_epoch = _start(rbm, checkpoint_path(out), config, resume=resume, say=say)
+    windows = window_sets(cache, config, stats, seed=seed, batch_size=rbm.batch_size)
+    train_batches: _Batches = windows[0]
+    val_batches: _Batches = windows[1]
+    stack: list[dict[str, Any]] = []
+    n_visible = fe.n_visible
+    if below is not None:
+        train_layer, val_layer = _LayerInput.pair(below, *windows, seed)
+        train_batches, val_batches = train_layer, val_layer
+        stack, lower = layer_arrays(below)
+        arrays.update(lower, input_mean=train_layer.mean, input_scale=train_layer.scale)
+        n_visible = below.n_features("top")
+    start_epoch = _start(rbm, checkpoint_path(out), config, n_visible, resume=resume, say=say)
     epochs = _Epochs(rbm, config, train_batches, val_batches, seed=seed, out=out, say=say,
                      began=t0)
     epochs.run(start_epoch, progress=progress)
-    rbm.save(out, metadata=_metadata(config, cache, cache_path, train_batches, val_batches),
-             arrays={"band_mean": stats.mean.astype(np.float64),
-                     "band_scale": stats.scale.astype(np.float64)})
+    metadata = _metadata(config, cache, cache_path, train_batches, val_batches)
+    if below is not None:
+        metadata.update(stack=stack, band_stats=below.metadata.get("band_stats"))
+    rbm.save(out, metadata=metadata, arrays=arrays)
     return TrainResult(model_path=out, history_path=history_path(out), history=rbm.history_,
                        n_train_clips=len(train_batches.clips),
                        n_validation_clips=len(val_batches.clips),
                        wall_seconds=time.perf_counter() - t0)
+
+
+class _Batches(Protocol):
+    """What the training loop reads: shuffled minibatches, samples, clip and frame counts."""
+
+    clips: np.ndarray
+    n_frames: int
+
+    def epoch(self, rng: np.random.Generator) -> Iterator[np.ndarray]: ...
+
+    def sample(self, n: int, rng: np.random.Generator) -> np.ndarray: ...
+
+
+class _LayerInput:
+    """A layer's training input: the cache's windows through the layers below, each
+    feature standardised by its mean and spread over the training windows."""
+
+    def __init__(self, below: FeaturePipeline, windows: WindowBatches, mean: np.ndarray,
+                 scale: np.ndarray) -> None:
+        self.below, self.windows, self.mean, self.scale = below, windows, mean, scale
+        self.clips, self.n_frames = windows.clips, windows.n_frames
+
+    @classmethod
+    def pair(cls, below: FeaturePipeline, train: WindowBatches, val: WindowBatches, seed: int
+             ) -> tuple[_LayerInput, _LayerInput]:
+        sample = below.transform_windows(train.sample(MONITOR_FRAMES * 4,
+                                                      np.random.default_rng([seed, 0x57AC])))
+        mean = sample.mean(axis=0, dtype=np.float64)
+        std = sample.std(axis=0, dtype=np.float64)
+        scale = np.where(std > 1e-6, std, 1.0)
+        return (cls(below, train, mean.astype(np.float32), scale.astype(np.float32)),
+                cls(below, val, mean.astype(np.float32), scale.astype(np.float32)))
+
+    def _inputs(self, windows: np.ndarray) -> np.ndarray:
+        return standardise(self.below.transform_windows(windows), self.mean, self.scale)
+
+    def epoch(self, rng: np.random.Generator) -> Iterator[np.ndarray]:
+        for batch in self.windows.epoch(rng):
+            yield self._inputs(batch)
+
+    def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        return self._inputs(self.windows.sample(n, rng))
 
 
 def _prepare_output(out: Path) -> Path:
@@ -174,13 +244,16 @@ def _prepare_output(out: Path) -> Path:
 
 
 def _open_cache(cache_path: str | Path, config: Config | None, overrides: Iterable[str],
-                model: Mapping[str, Any], say: Callable[[str], None]
-                ) -> tuple[FrameCache, Config]:
-    """The cache, and the configuration with the cache's own frame settings."""
+                model: Mapping[str, Any], say: Callable[[str], None],
+                below: FeaturePipeline | None) -> tuple[FrameCache, Config]:
+    """The cache, and the configuration with the cache's own frame settings (or, for a
+    layer stacked on another model, that model's front end, context included)."""
     cache = FrameCache.open(cache_path)
     config = (cache.config if config is None else config).with_overrides(overrides)
     if model:
         config = dataclasses.replace(config, model={**config.model, **model})
+    if below is not None:
+        config = dataclasses.replace(config, frontend=below.config.frontend)
     check_config_against_cache(config, cache)
     fe = dataclasses.replace(cache.config.frontend, context=config.frontend.context)
     _check_bands(cache, cache.band_stats, fe.n_mels, say)
@@ -200,7 +273,7 @@ def _check_bands(cache: FrameCache, stats: BandStats, n_mels: int,
             "information")
 
 
-def _start(rbm: RBM, ckpt: Path, config: Config, *, resume: bool,
+def _start(rbm: RBM, ckpt: Path, config: Config, n_visible: int, *, resume: bool,
            say: Callable[[str], None]) -> int:
     """The epoch to start from: after the checkpoint's with ``resume``, else 0 (fresh)."""
     start_epoch = 0
@@ -210,15 +283,15 @@ def _start(rbm: RBM, ckpt: Path, config: Config, *, resume: bool,
     elif resume:
         say(f"no checkpoint at {ckpt}; starting from scratch")
     if start_epoch == 0:
-        rbm.initialize(config.frontend.n_visible)
+        rbm.initialize(n_visible)
     return start_epoch
 
 
 class _Epochs:
     """The training loop: one guarded epoch, its monitoring, the checkpoint and history."""
 
-    def __init__(self, rbm: RBM, config: Config, train_batches: WindowBatches,
-                 val_batches: WindowBatches, *, seed: int, out: Path,
+    def __init__(self, rbm: RBM, config: Config, train_batches: _Batches,
+                 val_batches: _Batches, *, seed: int, out: Path,
                  say: Callable[[str], None], began: float) -> None:
         self.rbm, self.config, self.train_batches = rbm, config, train_batches
         self.seed, self.out, self.say, self.began = seed, out, say, began
@@ -275,7 +348,7 @@ class _Epochs:
 
 
 def _metadata(config: Config, cache: FrameCache, cache_path: str | Path,
-              train_batches: WindowBatches, val_batches: WindowBatches) -> dict[str, Any]:
+              train_batches: _Batches, val_batches: _Batches) -> dict[str, Any]:
     """What the model file records besides the model: config, cache summary, band stats."""
     fe = config.frontend
     return {
