@@ -31,7 +31,8 @@ __all__ = ["PCM_ENCODINGS", "Extractor", "FeatureStream", "load", "stream_pcm"]
 PCM_ENCODINGS = {"s16": ("<i2", 1 / 32768), "s32": ("<i4", 1 / 2147483648), "f32": ("<f4", 1.0)}
 
 
-def load(path: str | os.PathLike[str], *, pools: Sequence[str] = PROBE_POOLS) -> Extractor:
+def load(path: str | os.PathLike[str], *, pools: Sequence[str] = PROBE_POOLS,
+         layer: str = "top") -> Extractor:
     """Read a model file written by ``timbrel fit`` into a ready :class:`Extractor`.
 
     Parameters
@@ -40,6 +41,8 @@ def load(path: str | os.PathLike[str], *, pools: Sequence[str] = PROBE_POOLS) ->
         The model file.
     pools : sequence of {"mean", "max", "std"}, default ("max",)
         How :meth:`Extractor.transform` pools a clip's frames (as the probe does).
+    layer : {"top", "first", "all"}, default "top"
+        Which layer's features, for a stacked model (``timbrel fit --on``).
 
     Returns
     -------
@@ -53,7 +56,7 @@ def load(path: str | os.PathLike[str], *, pools: Sequence[str] = PROBE_POOLS) ->
     >>> extractor.features(y, 44100).shape  # doctest: +SKIP
     (n_frames, 1024)
     """
-    return Extractor(path, pools=pools).fit()
+    return Extractor(path, pools=pools, layer=layer).fit()
 
 
 class Extractor:
@@ -70,6 +73,8 @@ class Extractor:
     sr : int or None, default None
         Sample rate of the waveforms :meth:`transform` is given; None means the model's
         own rate. Files are read at their own rate.
+    layer : {"top", "first", "all"}, default "top"
+        Which layer's features, for a stacked model.
 
     Attributes
     ----------
@@ -88,16 +93,17 @@ class Extractor:
     """
 
     def __init__(self, model: str | os.PathLike[str], *, pools: Sequence[str] = PROBE_POOLS,
-                 sr: int | None = None) -> None:
+                 sr: int | None = None, layer: str = "top") -> None:
         self.model = model
         self.pools = pools
         self.sr = sr
+        self.layer = layer
 
     # ---------------------------------------------------------------- scikit-learn face
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         """The ``__init__`` arguments (scikit-learn's estimator protocol)."""
-        return {"model": self.model, "pools": self.pools, "sr": self.sr}
+        return {"model": self.model, "pools": self.pools, "sr": self.sr, "layer": self.layer}
 
     def set_params(self, **params: Any) -> Extractor:
         """Change ``__init__`` arguments; unknown names raise :class:`ParameterError`."""
@@ -130,7 +136,7 @@ class Extractor:
         self.pipeline_: FeaturePipeline = pipe
         self.frontend_: FrontEndConfig = fe
         self.summary_ = describe_model(Path(self.model), pipe)
-        self.n_features_ = int(pipe.rbm.n_hidden)
+        self.n_features_ = pipe.n_features(self.layer)
         self.latency_seconds_ = (fe.fft_length + fe.context * fe.hop_length) / fe.sample_rate
         return self
 
@@ -176,7 +182,7 @@ class Extractor:
 
     def _features_of(self, blocks: Iterator[np.ndarray]) -> np.ndarray:
         frames = FrontEnd(self.frontend_).stream(blocks, self.frontend_.sample_rate)
-        parts = list(self.pipeline_.stream_features(frames))
+        parts = list(self.pipeline_.stream_features(frames, self.layer))
         if not parts:
             return np.empty((0, self.n_features_), np.float32)
         return np.concatenate(parts)
@@ -252,7 +258,7 @@ class FeatureStream:
         self._channel = fe.channel
         self._resampler = Resampler(self.sr, fe.sample_rate)
         self._frames = FrameStream(FrontEnd(fe))
-        self._rows = FeatureRows(extractor.pipeline_)
+        self._rows = FeatureRows(extractor.pipeline_, extractor.layer)
         self._closed = False
 
     def _count(self, features: np.ndarray) -> np.ndarray:
