@@ -246,10 +246,21 @@ def probe_command(
         "--audio-root", help="Where the clips' audio lives (default: as recorded at export).")
     ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
+    events: Annotated[bool, typer.Option(
+        "--events", help="Probe frames instead of clips: detect the exported events (export "
+        "--events) and score them in 1 s segments.")] = False,
 ) -> None:
     """Do the features beat hand-made ones? A probe classifier beside MFCC and log-mel."""
     import json
 
+    if events:
+        from .detection import probe_events
+
+        found = probe_events(dataset, split_column=split_column or "split",
+                             baselines=[b.strip() for b in baseline.split(",") if b.strip()],
+                             audio_root=audio_root)
+        typer.echo(json.dumps(found.to_dict(), indent=1) if as_json else found.table())
+        return
     from .evaluation import probe
 
     result = probe(dataset, label=label, split_column=split_column or None,
