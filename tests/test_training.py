@@ -12,6 +12,7 @@ import soundfile as sf
 from timbrel import ConfigError, DivergenceError
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
+from timbrel.frontend import stack_context
 from timbrel.pipeline import describe_model, load_pipeline
 from timbrel.training import checkpoint_path, history_path, train
 
@@ -157,3 +158,23 @@ def test_a_layer_stacked_on_a_model_learns_from_its_features(tmp_path, cache_dir
     assert [u.rbm.n_hidden for u in deep.upper] == [8, 4]
     np.testing.assert_allclose(deep.features(frames, "all")[:, :32],
                                stacked.features(frames, "all"), rtol=1e-6)
+
+
+def test_whitened_training_and_a_stack_on_it(tmp_path, cache_dir):
+    from timbrel.pipeline import load_pipeline, whiten
+
+    base = tmp_path / "white.npz"
+    config = _config().with_overrides(["training.whiten=zca", "training.whiten_epsilon=0.1"])
+    train(cache_dir, base, config=config)
+    pipe = load_pipeline(base)
+    mean, matrix = pipe.whitening
+    assert matrix.shape == (80, 80) and np.allclose(matrix, matrix.T, atol=1e-5)
+    frames = FrameCache.open(cache_dir).clip_frames(2)
+    windows = stack_context(pipe.standardise(frames), 2)
+    np.testing.assert_allclose(pipe.features(frames),
+                               pipe.rbm.transform(whiten(windows, mean, matrix)), rtol=1e-5)
+    top = tmp_path / "top.npz"
+    train(cache_dir, top, config=_config(n_hidden=6), on=base)
+    stacked = load_pipeline(top)
+    np.testing.assert_array_equal(stacked.whitening[1], matrix)
+    np.testing.assert_allclose(stacked.features(frames, "first"), pipe.features(frames))

@@ -6,11 +6,17 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from timbrel import ConfigError
+from timbrel import ConfigError, ParameterError
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
 from timbrel.frontend import stack_context
-from timbrel.windows import WindowBatches, check_config_against_cache, split_clips, window_sets
+from timbrel.windows import (
+    WindowBatches,
+    check_config_against_cache,
+    split_clips,
+    window_sets,
+    zca_whitening,
+)
 
 sys.path.insert(0, str(Path(__file__).parent / "data"))
 import make_model_v1  # librosa chirps and tones, and their settings
@@ -67,3 +73,22 @@ def test_other_frame_settings_are_refused_by_name(cache):
     # the context is not a frame setting: the same cache serves any context
     check_config_against_cache(
         load_config(overrides=[*make_model_v1.OVERRIDES, "frontend.context=4"]), cache)
+
+
+@pytest.mark.parametrize("epsilon", [1e-3, 0.1, 1.0])
+def test_zca_whitening_is_the_inverse_square_root_of_the_covariance(epsilon):
+    # Source: ZCA whitening W = (C + eps I)^(-1/2) (Bell & Sejnowski 1997), computed with
+    # scipy.linalg.sqrtm and numpy's inverse as the reference.
+    import scipy.linalg
+
+    rng = np.random.default_rng(4)
+    mixing = rng.standard_normal((6, 6))
+    x = rng.standard_normal((4000, 6)) @ mixing + rng.normal(size=6)
+    mean, matrix = zca_whitening(x, epsilon)
+    covariance = np.cov(x.T)
+    reference = np.real(scipy.linalg.sqrtm(np.linalg.inv(covariance + epsilon * np.eye(6))))
+    np.testing.assert_allclose(matrix, reference, rtol=1e-4, atol=1e-5)
+    np.testing.assert_allclose(mean, x.mean(axis=0), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(matrix, matrix.T, atol=1e-6)
+    with pytest.raises(ParameterError):
+        zca_whitening(x, 0.0)

@@ -39,6 +39,7 @@ __all__ = [
 WINDOWS = ("hann", "hamming", "blackman")
 MEL_SCALES = ("slaney", "htk")
 FILTER_NORMS = ("slaney", "none")
+WHITENINGS = ("none", "zca")
 
 
 def _field(default: Any, help: str, *, low: float | None = None, high: float | None = None,
@@ -185,6 +186,12 @@ class TrainingConfig:
         65536, "frames read into memory at once and shuffled together", low=256, high=1 << 26)
     max_frames: int = _field(
         0, "train on at most this many frames per epoch (0: all)", low=0, high=1 << 40)
+    whiten: str = _field(
+        "none", "decorrelate the context windows before the model: 'none' or 'zca'",
+        choices=WHITENINGS)
+    whiten_epsilon: float = _field(
+        0.1, "added to each eigenvalue of the windows' covariance before whitening",
+        low=1e-6, high=100.0)
 
     def __post_init__(self) -> None:
         _check_fields(self, "training")

@@ -595,14 +595,16 @@ class _Tally:
         return mean, math.sqrt(var / max(self.n - 1, 1))
 
 
-def _score_set(rbm: RBM, path: _Path, batches: WindowBatches, max_windows: int,
+def _score_set(pipe: FeaturePipeline, path: _Path, batches: WindowBatches, max_windows: int,
                rng: np.random.Generator) -> _Tally:
+    """Free energies of a set's windows, as the first layer sees them (whitened or not)."""
+    rbm = pipe.rbm
     tally = _Tally(rbm.n_features_in_)
     if max_windows and batches.n_frames > max_windows:
-        tally.add(rbm, path, batches.sample(max_windows, rng))
+        tally.add(rbm, path, pipe.prepare(batches.sample(max_windows, rng)))
         return tally
     for segment in batches.segments:
-        tally.add(rbm, path, batches.rows(*segment))
+        tally.add(rbm, path, pipe.prepare(batches.rows(*segment)))
     return tally
 
 
@@ -694,7 +696,7 @@ def score(
     provisional = _annealing_path(rbm, np.zeros(rbm.n_features_in_), np.ones(rbm.n_features_in_),
                                   copies=1)
     rng = np.random.default_rng([seed, 0x5C0])
-    tallies = [(name, batches, _score_set(rbm, provisional, batches, max_windows, rng))
+    tallies = [(name, batches, _score_set(pipe, provisional, batches, max_windows, rng))
                for name, batches in named if batches.n_frames > 0]
     base = tallies[0][2]
     mean = base.v_sum / base.n
@@ -711,7 +713,8 @@ def score(
     sets = []
     for name, batches, tally in tallies:
         mean_f, sem = tally.mean_sem()
-        log_lik = -mean_f - partition.log_z
+        # the first layer models whitened windows: p(window) = p(Wz) |det W|
+        log_lik = -mean_f - partition.log_z + pipe.whitening_log_det()
         sets.append(SetScore(name=name, n_clips=len(batches.clips), n_windows=tally.n,
                              mean_free_energy=mean_f, free_energy_sem=sem,
                              log_likelihood=log_lik,

@@ -22,7 +22,7 @@ from .model import RBM, ModelFile, rbm_from_parameters, read_model_file
 from .model._files import PARAM_ARRAYS
 
 __all__ = ["LAYERS", "FeaturePipeline", "FeatureRows", "Layer", "describe_model", "describe_text",
-           "layer_arrays", "load_pipeline"]
+           "layer_arrays", "load_pipeline", "whiten"]
 
 
 #: Which features a stacked pipeline gives: the top layer's, the first layer's (over the
@@ -63,14 +63,28 @@ class FeaturePipeline:
     """
 
     def __init__(self, rbm: RBM, config: Config, band_mean: np.ndarray, band_scale: np.ndarray,
-                 checksum: str, metadata: dict[str, Any], upper: Sequence[Layer] = ()) -> None:
+                 checksum: str, metadata: dict[str, Any], upper: Sequence[Layer] = (),
+                 whitening: tuple[np.ndarray, np.ndarray] | None = None) -> None:
         self.rbm = rbm
         self.upper = list(upper)
+        self.whitening = whitening
         self.config = config
         self.band_mean = np.asarray(band_mean, np.float32)
         self.band_scale = np.asarray(band_scale, np.float32)
         self.checksum = checksum
         self.metadata = metadata
+
+    def prepare(self, windows: np.ndarray) -> np.ndarray:
+        """Standardised context windows as the first layer sees them: ZCA-whitened when
+        the model was trained so (``training.whiten``), else unchanged."""
+        return windows if self.whitening is None else whiten(windows, *self.whitening)
+
+    def whitening_log_det(self) -> float:
+        """log |det| of the whitening matrix (0 without whitening): the log-Jacobian from
+        standardised windows to what the first layer models."""
+        if self.whitening is None:
+            return 0.0
+        return float(np.linalg.slogdet(self.whitening[1].astype(np.float64))[1])
 
     @property
     def top(self) -> RBM:
@@ -86,7 +100,7 @@ class FeaturePipeline:
     def transform_windows(self, windows: np.ndarray, layer: str = "top") -> np.ndarray:
         """Features of standardised context windows, (n, n_features(layer)), float32."""
         _check_layer(layer)
-        out = [self.rbm.transform(windows)]
+        out = [self.rbm.transform(self.prepare(windows))]
         if layer != "first":
             for upper in self.upper:
                 out.append(upper.transform(out[-1]))
@@ -199,7 +213,28 @@ def load_pipeline(path: str | Path) -> FeaturePipeline:
     if first.n_features_in_ != config.frontend.n_visible:
         raise ModelFileError(f"{path}: model has {first.n_features_in_} visible units but its "
                              f"front end gives {config.frontend.n_visible}")
-    return FeaturePipeline(first, config, band_mean, band_scale, model.checksum, meta, upper)
+    return FeaturePipeline(first, config, band_mean, band_scale, model.checksum, meta, upper,
+                           _whitening(path, model, config))
+
+
+def whiten(windows: np.ndarray, mean: np.ndarray, matrix: np.ndarray) -> np.ndarray:
+    """``(windows - mean) @ matrix`` in float32 (see :func:`timbrel.windows.zca_whitening`)."""
+    centred = np.asarray(windows, np.float32) - mean
+    return centred @ matrix
+
+
+def _whitening(path: str | Path, model: ModelFile, config: Config
+               ) -> tuple[np.ndarray, np.ndarray] | None:
+    if config.training.whiten == "none":
+        return None
+    n = config.frontend.n_visible
+    try:
+        mean, matrix = model.arrays["whiten_mean"], model.arrays["whiten_matrix"]
+    except KeyError as exc:
+        raise ModelFileError(f"{path}: trained on whitened windows but lacks {exc}") from None
+    if mean.shape != (n,) or matrix.shape != (n, n):
+        raise ModelFileError(f"{path}: whitening arrays do not match {n} visible values")
+    return np.asarray(mean, np.float32), np.asarray(matrix, np.float32)
 
 
 def _check_layer(layer: str) -> None:
@@ -217,7 +252,8 @@ def layer_arrays(pipe: FeaturePipeline) -> tuple[list[dict[str, Any]], dict[str,
         model file's ``stack`` metadata).
     arrays : dict of str to ndarray
         ``layerK.NAME`` for each layer K (from 1) and parameter NAME, and
-        ``layerK.input_mean`` / ``layerK.input_scale`` for K >= 2.
+        ``layerK.input_mean`` / ``layerK.input_scale`` for K >= 2, and the first
+        layer's whitening (``whiten_mean``, ``whiten_matrix``) when it has one.
     """
     rbms = [pipe.rbm, *(u.rbm for u in pipe.upper)]
     stack, arrays = [], {}
@@ -230,6 +266,8 @@ def layer_arrays(pipe: FeaturePipeline) -> tuple[list[dict[str, Any]], dict[str,
     for k, upper in enumerate(pipe.upper, start=2):
         arrays[f"layer{k}.input_mean"] = upper.input_mean
         arrays[f"layer{k}.input_scale"] = upper.input_scale
+    if pipe.whitening is not None:
+        arrays["whiten_mean"], arrays["whiten_matrix"] = pipe.whitening
     return stack, arrays
 
 

@@ -28,13 +28,14 @@ from .cache import FrameCache
 from .config import Config
 from .frontend import BandStats, standardise
 from .model import CONSTRAINTS, RBM, read_checkpoint, write_checkpoint
-from .pipeline import FeaturePipeline, layer_arrays, load_pipeline
+from .pipeline import FeaturePipeline, layer_arrays, load_pipeline, whiten
 from .windows import (
     Standardiser,
     WindowBatches,
     check_config_against_cache,
     split_seed,
     window_sets,
+    zca_whitening,
 )
 
 __all__ = [
@@ -134,8 +135,8 @@ def train(
         ``[model]`` keys set last, e.g. ``{"n_hidden": 512, "seed": 0}``.
     on : str or Path, optional
         A trained model file to stack this model on: the new layer learns from the
-        features that model gives of the cache's windows (its front end and context are
-        used, each feature standardised over the training windows), and the written
+        features that model gives of the cache's windows (its front end, context and
+        whitening are used, each feature standardised over the training windows), and the written
         file holds every layer (``timbrel export --layer`` chooses which to export).
     resume : bool, default False
         Continue from ``OUT.checkpoint.npz``. A resumed run ends with the same
@@ -172,11 +173,15 @@ def train(
     stack: list[dict[str, Any]] = []
     n_visible = fe.n_visible
     if below is not None:
-        train_layer, val_layer = _LayerInput.pair(below, *windows, seed)
-        train_batches, val_batches = train_layer, val_layer
+        mean, scale, fn = _layer_input(below, windows[0], seed)
         stack, lower = layer_arrays(below)
-        arrays.update(lower, input_mean=train_layer.mean, input_scale=train_layer.scale)
+        arrays.update(lower, input_mean=mean, input_scale=scale)
         n_visible = below.n_features("top")
+    elif config.training.whiten == "zca":
+        mean, matrix, fn = _whitening(windows[0], config.training.whiten_epsilon, seed)
+        arrays.update(whiten_mean=mean, whiten_matrix=matrix)
+    if below is not None or config.training.whiten != "none":
+        train_batches, val_batches = _Mapped(windows[0], fn), _Mapped(windows[1], fn)
     start_epoch = _start(rbm, checkpoint_path(out), config, n_visible, resume=resume, say=say)
     epochs = _Epochs(rbm, config, train_batches, val_batches, seed=seed, out=out, say=say,
                      began=t0)
@@ -202,35 +207,44 @@ class _Batches(Protocol):
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray: ...
 
 
-class _LayerInput:
-    """A layer's training input: the cache's windows through the layers below, each
-    feature standardised by its mean and spread over the training windows."""
+class _Mapped:
+    """Minibatches and samples of windows, each passed through ``fn`` on the way out."""
 
-    def __init__(self, below: FeaturePipeline, windows: WindowBatches, mean: np.ndarray,
-                 scale: np.ndarray) -> None:
-        self.below, self.windows, self.mean, self.scale = below, windows, mean, scale
+    def __init__(self, windows: WindowBatches, fn: Callable[[np.ndarray], np.ndarray]) -> None:
+        self.windows, self.fn = windows, fn
         self.clips, self.n_frames = windows.clips, windows.n_frames
-
-    @classmethod
-    def pair(cls, below: FeaturePipeline, train: WindowBatches, val: WindowBatches, seed: int
-             ) -> tuple[_LayerInput, _LayerInput]:
-        sample = below.transform_windows(train.sample(MONITOR_FRAMES * 4,
-                                                      np.random.default_rng([seed, 0x57AC])))
-        mean = sample.mean(axis=0, dtype=np.float64)
-        std = sample.std(axis=0, dtype=np.float64)
-        scale = np.where(std > 1e-6, std, 1.0)
-        return (cls(below, train, mean.astype(np.float32), scale.astype(np.float32)),
-                cls(below, val, mean.astype(np.float32), scale.astype(np.float32)))
-
-    def _inputs(self, windows: np.ndarray) -> np.ndarray:
-        return standardise(self.below.transform_windows(windows), self.mean, self.scale)
 
     def epoch(self, rng: np.random.Generator) -> Iterator[np.ndarray]:
         for batch in self.windows.epoch(rng):
-            yield self._inputs(batch)
+            yield self.fn(batch)
 
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
-        return self._inputs(self.windows.sample(n, rng))
+        return self.fn(self.windows.sample(n, rng))
+
+
+#: Training windows drawn (at most) for a stacked layer's input statistics and for the
+#: whitening matrix.
+STATISTICS_FRAMES = 32768
+
+
+def _layer_input(below: FeaturePipeline, train: WindowBatches, seed: int
+                 ) -> tuple[np.ndarray, np.ndarray, Callable[[np.ndarray], np.ndarray]]:
+    """Mean and scale of the lower layers' features over training windows, and the map
+    from windows to the standardised features a stacked layer learns from."""
+    sample = below.transform_windows(train.sample(STATISTICS_FRAMES,
+                                                  np.random.default_rng([seed, 0x57AC])))
+    mean = sample.mean(axis=0, dtype=np.float64).astype(np.float32)
+    std = sample.std(axis=0, dtype=np.float64)
+    scale = np.where(std > 1e-6, std, 1.0).astype(np.float32)
+    return mean, scale, lambda w: standardise(below.transform_windows(w), mean, scale)
+
+
+def _whitening(train: WindowBatches, epsilon: float, seed: int
+               ) -> tuple[np.ndarray, np.ndarray, Callable[[np.ndarray], np.ndarray]]:
+    """ZCA whitening of the training windows and the map that applies it."""
+    mean, matrix = zca_whitening(train.sample(STATISTICS_FRAMES,
+                                              np.random.default_rng([seed, 0x2CA])), epsilon)
+    return mean, matrix, lambda w: whiten(w, mean, matrix)
 
 
 def _prepare_output(out: Path) -> Path:
@@ -252,8 +266,10 @@ def _open_cache(cache_path: str | Path, config: Config | None, overrides: Iterab
     config = (cache.config if config is None else config).with_overrides(overrides)
     if model:
         config = dataclasses.replace(config, model={**config.model, **model})
-    if below is not None:
-        config = dataclasses.replace(config, frontend=below.config.frontend)
+    if below is not None:  # the lower layers' front end, context and whitening
+        training = dataclasses.replace(config.training, whiten=below.config.training.whiten,
+                                       whiten_epsilon=below.config.training.whiten_epsilon)
+        config = dataclasses.replace(config, frontend=below.config.frontend, training=training)
     check_config_against_cache(config, cache)
     fe = dataclasses.replace(cache.config.frontend, context=config.frontend.context)
     _check_bands(cache, cache.band_stats, fe.n_mels, say)

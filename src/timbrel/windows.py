@@ -20,7 +20,7 @@ from .config import Config
 from .frontend import context_rows
 
 __all__ = ["SEGMENT_FRAMES", "Standardiser", "WindowBatches", "check_config_against_cache",
-           "split_clips", "split_seed", "window_sets"]
+           "split_clips", "split_seed", "window_sets", "zca_whitening"]
 
 #: Frames of one clip read at a time: bounds memory for very long clips.
 SEGMENT_FRAMES = 8192
@@ -160,3 +160,46 @@ def check_config_against_cache(config: Config, cache: FrameCache) -> None:
     if diffs:
         raise ConfigError(f"{cache.path}: the cache's frames were made with other front-end "
                           f"settings ({'; '.join(diffs)}); rebuild the cache or drop those keys")
+
+
+def zca_whitening(windows: np.ndarray, epsilon: float) -> tuple[np.ndarray, np.ndarray]:
+    """The ZCA whitening of a sample of windows: ``(w - mean) @ matrix`` has (nearly)
+    uncorrelated unit-variance columns and stays as close to ``w`` as whitening can.
+
+    ``matrix = U diag(1 / sqrt(λ + epsilon)) Uᵀ`` from the eigendecomposition
+    ``U diag(λ) Uᵀ`` of the sample covariance (Bell & Sejnowski 1997; as used before
+    feature learning by Coates, Lee & Ng 2011); ``epsilon`` keeps directions of tiny
+    variance from being blown up into noise.
+
+    Parameters
+    ----------
+    windows : np.ndarray, shape (n, d)
+    epsilon : float > 0
+
+    Returns
+    -------
+    mean : np.ndarray, shape (d,), float32
+    matrix : np.ndarray, shape (d, d), float32, symmetric
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.random.default_rng(0).standard_normal((5000, 3)) @ [[2, 1, 0], [0, 1, 0], [0, 0, 3]]
+    >>> mean, matrix = zca_whitening(x, 1e-6)
+    >>> np.round(np.cov(((x - mean) @ matrix).T), 2) + 0.0
+    array([[1., 0., 0.],
+           [0., 1., 0.],
+           [0., 0., 1.]])
+    """
+    if not epsilon > 0:
+        raise ParameterError(f"epsilon = {epsilon!r} must be positive")
+    sample = np.asarray(windows, np.float64)
+    if sample.ndim != 2 or len(sample) < 2:
+        raise ParameterError(f"whitening needs a 2-D sample of at least 2 windows; got shape "
+                             f"{sample.shape}")
+    mean = sample.mean(axis=0)
+    centred = sample - mean
+    covariance = centred.T @ centred / (len(sample) - 1)
+    values, vectors = np.linalg.eigh(covariance)
+    matrix = (vectors / np.sqrt(np.maximum(values, 0.0) + epsilon)) @ vectors.T
+    return mean.astype(np.float32), matrix.astype(np.float32)
