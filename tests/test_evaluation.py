@@ -10,7 +10,8 @@ import soundfile as sf
 from timbrel import ParameterError
 from timbrel.cache import build_cache
 from timbrel.config import load_config
-from timbrel.evaluation import pool_frames, probe, read_clip_features
+from timbrel.evaluation import kmeans_triangle, probe, read_clip_features
+from timbrel.pooling import pool_frames
 from timbrel.export import export
 from timbrel.training import train
 
@@ -66,16 +67,16 @@ def test_clip_features_equal_pooled_frames_read_by_pyarrow(tones):
 def test_probe_separates_tones_and_reports_baselines(tones):
     # three tones an octave and more apart: any reasonable feature set separates them
     result = probe(tones / "ds")
-    assert [s.name for s in result.scores] == ["rbm-relu", "mfcc", "logmel"]
+    assert [s.name for s in result.scores] == ["rbm-relu", "mfcc", "logmel", "kmeans-16"]
     assert result.classes == ["high", "low", "mid"]
     assert (result.n_train, result.n_test) == (12, 6)
     for score in result.scores:
         assert score.accuracy == pytest.approx(1.0)
         assert np.sum(score.confusion) == 6
     assert "macro-F1" in result.table()
-    # each row says how its clips were pooled: the learned features by the default,
-    # the baselines by mean and std
-    assert [s.pooling for s in result.scores] == ["max", "mean,std", "mean,std"]
+    # each row says how its clips were pooled: the learned features and the k-means code
+    # by the default, MFCCs by mean and std, log-mel frames by mean and max
+    assert [s.pooling for s in result.scores] == ["max", "mean,std", "mean,max", "max"]
     assert result.to_dict()["scores"][0]["pooling"] == "max"
     assert all(s.pooling in line for s, line in zip(
         result.scores, result.table().splitlines()[2:], strict=False))
@@ -88,11 +89,27 @@ def test_probe_reports_the_pooling_it_was_given(tones, pools):
     assert score.n_features % len(pools) == 0
 
 
+def test_kmeans_triangle_code_from_scikit_learns_distances():
+    # Source: the triangle activation max(0, mean_k(z) - z_k) of Coates, Lee & Ng (2011)
+    # applied to the distances of scikit-learn's KMeans.transform.
+    from sklearn.cluster import KMeans
+
+    x = np.random.default_rng(3).standard_normal((300, 5)).astype(np.float32)
+    km = KMeans(n_clusters=7, n_init=1, random_state=0).fit(x)
+    z = km.transform(x)
+    expected = np.maximum(z.mean(axis=1, keepdims=True) - z, 0.0)
+    got = kmeans_triangle(x, km.cluster_centers_)
+    np.testing.assert_allclose(got, expected, rtol=1e-4, atol=1e-4)
+    assert np.all((got > 0).sum(axis=1) < 7)  # every window leaves some units at zero
+
+
 def test_probe_without_split_uses_folds_over_clips(tones):
-    result = probe(tones / "ds", split_column=None, baselines=(), folds=3)
+    result = probe(tones / "ds", split_column=None, baselines=("kmeans",), folds=3)
     assert "3-fold" in result.scheme
     assert result.n_test == 18  # every clip scored once
-    assert len(result.scores) == 1
+    assert len(result.scores) == 2
+    # the k-means peer is fitted per fold, and its confusion counts every clip once
+    assert np.sum(result.scores[1].confusion) == 18
 
 
 def test_probe_errors_name_the_problem(tones, tmp_path):

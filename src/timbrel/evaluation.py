@@ -20,45 +20,23 @@ import numpy as np
 
 from ._errors import ParameterError
 from .audio import load
-from .frontend import FrontEnd
+from .frontend import BandStats, FrontEnd, stack_context
+from .pipeline import whiten
+from .pooling import PROBE_POOLS, ClipPool, pool_frames
+from .windows import zca_whitening
 
-__all__ = ["BASELINES", "FRAME_POOLS", "PROBE_POOLS", "ProbeResult", "ProbeScore",
-           "pool_frames", "probe", "read_clip_features"]
+__all__ = ["BASELINES", "BASELINE_POOLS", "KMEANS_EPSILON", "ProbeResult", "ProbeScore",
+           "kmeans_triangle", "probe", "read_clip_features"]
 
-BASELINES = ("mfcc", "logmel")
-FRAME_POOLS = ("mean", "max", "std")
-#: Default pooling of the learned features. Max alone was chosen on held-out voices of
-#: the spoken-word set (``bench/bench_probe.py --voices validation``, 480 clips, three
-#: seeds): 0.957 against 0.924 for mean and max, 0.898 for mean and std, 0.869 for the
-#: mean alone. A clip's mean activation carries its speaker; whether a unit fired at
-#: all carries the word.
-PROBE_POOLS = ("max",)
-#: Pooling of the hand-made baselines: mean and spread of MFCCs over a clip, as usual.
-BASELINE_POOLS = ("mean", "std")
+BASELINES = ("mfcc", "logmel", "kmeans")
+#: How each peer pools its frames over a clip: MFCCs by mean and spread, as usual; the
+#: log-mel frames by mean and maximum; the k-means code as the learned features are
+#: pooled (``pools``), so that learning the features is the only difference.
+BASELINE_POOLS = {"mfcc": ("mean", "std"), "logmel": ("mean", "max")}
 N_MFCC = 20
-
-
-def pool_frames(frames: np.ndarray, pools: Sequence[str]) -> np.ndarray:
-    """Concatenate poolings over time of one clip's frames.
-
-    Parameters
-    ----------
-    frames : np.ndarray, shape (n_frames, n_features)
-    pools : sequence of {"mean", "max", "std"}
-
-    Returns
-    -------
-    np.ndarray, shape (len(pools) * n_features,), float64
-    """
-    frames = np.asarray(frames, np.float64)
-    if frames.ndim != 2 or len(frames) == 0:
-        raise ParameterError(f"frames must be a non-empty 2-D array; got shape {frames.shape}")
-    parts = {"mean": lambda: frames.mean(axis=0), "max": lambda: frames.max(axis=0),
-             "std": lambda: frames.std(axis=0)}
-    bad = [p for p in pools if p not in parts]
-    if bad or not pools:
-        raise ParameterError(f"pools {list(pools)} must be a non-empty subset of {FRAME_POOLS}")
-    return np.concatenate([parts[p]() for p in pools])
+#: Regulariser of the k-means peer's whitening, and the windows it is fitted on at most.
+KMEANS_EPSILON = 0.1
+KMEANS_WINDOWS = 50000
 
 
 def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Sequence[str] = ()
@@ -106,21 +84,11 @@ def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Se
         extras = {c: batch.column(c).to_numpy(zero_copy_only=False)[order] for c in columns}
         cuts = np.flatnonzero(src[1:] != src[:-1]) + 1
         for a, b in zip(np.r_[0, cuts], np.r_[cuts, len(src)], strict=True):
-            block = feats[a:b]
-            entry = acc.setdefault(src[a], {"n": 0, "sum": 0.0, "sq": 0.0, "max": -np.inf,
+            entry = acc.setdefault(src[a], {"pool": ClipPool(n_hidden),
                                             "extra": {c: str(extras[c][a]) for c in columns}})
-            entry["n"] += len(block)
-            entry["sum"] = entry["sum"] + block.sum(axis=0)
-            entry["sq"] = entry["sq"] + np.square(block).sum(axis=0)
-            entry["max"] = np.maximum(entry["max"], block.max(axis=0))
+            entry["pool"].add(feats[a:b])
     sources = sorted(acc)
-    rows = []
-    for s in sources:
-        e = acc[s]
-        mean = e["sum"] / e["n"]
-        parts = {"mean": mean, "max": e["max"],
-                 "std": np.sqrt(np.maximum(e["sq"] / e["n"] - mean ** 2, 0.0))}
-        rows.append(np.concatenate([parts[p] for p in pools]))
+    rows = [np.concatenate(list(acc[s]["pool"].result(pools).values())) for s in sources]
     features = np.array(rows) if rows else np.zeros((0, len(pools) * n_hidden))
     extra = {c: [acc[s]["extra"][c] for s in sources] for c in columns}
     return sources, features, extra, metadata
@@ -177,26 +145,81 @@ class ProbeResult:
         return "\n".join(lines)
 
 
-def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.ndarray:
+def _frames_of(paths: Sequence[Path], fe: FrontEnd) -> list[np.ndarray]:
+    c = fe.config
+    return [fe.frames(load(path, sr=c.sample_rate, channel=c.channel), c.sample_rate)
+            for path in paths]
+
+
+def _mfcc(path: Path, fe: FrontEnd) -> np.ndarray:
+    """MFCCs with deltas from librosa, with the model's own framing and mel settings."""
     import librosa
 
     c = fe.config
-    rows = []
-    for path in paths:
-        y = load(path, sr=c.sample_rate, channel=c.channel)
-        if kind == "logmel":
-            rows.append(pool_frames(fe.frames(y, c.sample_rate), BASELINE_POOLS))
-            continue
-        # MFCCs with deltas from librosa, with the model's own framing and mel settings
-        mfcc = librosa.feature.mfcc(
-            y=y, sr=c.sample_rate, n_mfcc=N_MFCC, n_fft=c.fft_length, hop_length=c.hop_length,
-            win_length=c.win_length, window=c.window, n_mels=c.n_mels, fmin=c.fmin,
-            fmax=c.upper_frequency, htk=c.mel_scale == "htk", center=False)
-        width = min(9, mfcc.shape[1] if mfcc.shape[1] % 2 else mfcc.shape[1] - 1)
-        delta = (librosa.feature.delta(mfcc, width=width) if width >= 3
-                 else np.zeros_like(mfcc))
-        rows.append(pool_frames(np.vstack([mfcc, delta]).T, BASELINE_POOLS))
-    return np.array(rows)
+    y = load(path, sr=c.sample_rate, channel=c.channel)
+    mfcc = librosa.feature.mfcc(
+        y=y, sr=c.sample_rate, n_mfcc=N_MFCC, n_fft=c.fft_length, hop_length=c.hop_length,
+        win_length=c.win_length, window=c.window, n_mels=c.n_mels, fmin=c.fmin,
+        fmax=c.upper_frequency, htk=c.mel_scale == "htk", center=False)
+    width = min(9, mfcc.shape[1] if mfcc.shape[1] % 2 else mfcc.shape[1] - 1)
+    delta = librosa.feature.delta(mfcc, width=width) if width >= 3 else np.zeros_like(mfcc)
+    return np.vstack([mfcc, delta]).T
+
+
+def kmeans_triangle(windows: np.ndarray, centres: np.ndarray) -> np.ndarray:
+    """The triangle code of Coates, Lee & Ng (2011): ``max(0, mean_k(z) - z_k)`` with
+    ``z_k`` the distance of a window to centre ``k``.
+
+    Parameters
+    ----------
+    windows : np.ndarray, shape (n, d)
+    centres : np.ndarray, shape (k, d)
+
+    Returns
+    -------
+    np.ndarray, shape (n, k), float32
+        About half the units are zero for each window: those farther than average.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> kmeans_triangle(np.array([[0.0, 0.0]]), np.array([[1.0, 0.0], [3.0, 0.0]]))
+    array([[1., 0.]], dtype=float32)
+    """
+    x = np.asarray(windows, np.float32)
+    c = np.asarray(centres, np.float32)
+    squared = (np.square(x).sum(axis=1)[:, None] - 2.0 * (x @ c.T)
+               + np.square(c).sum(axis=1)[None, :])
+    z = np.sqrt(np.maximum(squared, 0.0))
+    return np.maximum(z.mean(axis=1, keepdims=True) - z, 0.0).astype(np.float32)
+
+
+def _kmeans_features(frames: Sequence[np.ndarray], train_idx: np.ndarray, *, context: int,
+                     k: int, pools: Sequence[str], seed: int) -> np.ndarray:
+    """The k-means peer: context windows of the clips, standardised and ZCA-whitened with
+    statistics of the training clips, coded by k-means centres fitted on those windows."""
+    from sklearn.cluster import MiniBatchKMeans
+
+    stats = BandStats(frames[0].shape[1])
+    for i in train_idx:
+        stats.update(frames[i])
+    windows = [stack_context(stats.standardise(f), context) for f in frames]
+    sample = np.concatenate([windows[i] for i in train_idx])
+    rng = np.random.default_rng([seed, 0xC0A7])
+    if len(sample) > KMEANS_WINDOWS:
+        sample = sample[rng.choice(len(sample), KMEANS_WINDOWS, replace=False)]
+    mean, matrix = zca_whitening(sample, KMEANS_EPSILON)
+    centres = MiniBatchKMeans(n_clusters=min(k, len(sample)), random_state=seed, n_init=1,
+                              batch_size=4096, max_iter=50).fit(
+        whiten(sample, mean, matrix)).cluster_centers_
+    return np.array([pool_frames(kmeans_triangle(whiten(w, mean, matrix), centres), pools)
+                     for w in windows])
+
+
+def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.ndarray:
+    if kind == "logmel":
+        return np.array([pool_frames(f, BASELINE_POOLS["logmel"]) for f in _frames_of(paths, fe)])
+    return np.array([pool_frames(_mfcc(p, fe), BASELINE_POOLS["mfcc"]) for p in paths])
 
 
 def _score(name: str, pools: Sequence[str], X: np.ndarray, y: np.ndarray,
@@ -224,6 +247,37 @@ def _score(name: str, pools: Sequence[str], X: np.ndarray, y: np.ndarray,
         confusion=confusion_matrix(t, p, labels=classes).tolist())
 
 
+def _kmeans_score(paths: Sequence[Path], fe: FrontEnd, k: int, pools: Sequence[str],
+                  y: np.ndarray, classes: list[str],
+                  splits: list[tuple[np.ndarray, np.ndarray]], seed: int) -> ProbeScore:
+    """The k-means peer, fitted on each split's training clips alone."""
+    frames = _frames_of(paths, fe)
+    parts = []
+    for train_idx, test_idx in splits:
+        X = _kmeans_features(frames, train_idx, context=fe.config.context, k=k, pools=pools,
+                             seed=seed)
+        parts.append(_score(f"kmeans-{k}", pools, X, y, classes, [(train_idx, test_idx)], seed))
+    if len(parts) == 1:
+        return parts[0]
+    return _merge_folds(parts, classes)
+
+
+def _merge_folds(parts: list[ProbeScore], classes: list[str]) -> ProbeScore:
+    """One score from per-fold scores (each test clip counted once)."""
+    confusion = np.sum([np.array(p.confusion) for p in parts], axis=0)
+    n = confusion.sum()
+    recall = {c: float(confusion[i, i] / max(confusion[i].sum(), 1))
+              for i, c in enumerate(classes)}
+    precision = np.diag(confusion) / np.maximum(confusion.sum(axis=0), 1)
+    rec = np.array(list(recall.values()))
+    f1 = np.where(precision + rec > 0, 2 * precision * rec / np.maximum(precision + rec, 1e-12),
+                  0.0)
+    first = parts[0]
+    return ProbeScore(name=first.name, pooling=first.pooling, n_features=first.n_features,
+                      accuracy=float(np.trace(confusion) / n), macro_f1=float(f1.mean()),
+                      per_class_recall=recall, confusion=confusion.tolist())
+
+
 def probe(
     dataset: str | Path,
     *,
@@ -246,9 +300,13 @@ def probe(
     split_column : str or None, default "split"
         Column with ``train`` / ``test`` per clip. If None or absent, stratified
         ``folds``-fold cross-validation over clips is used instead.
-    baselines : sequence of {"mfcc", "logmel"}, default both
-        Hand-made features computed from the same audio in the same run: MFCCs (20) with
-        deltas, mean- and std-pooled; the model's own log-mel frames, mean- and std-pooled.
+    baselines : sequence of {"mfcc", "logmel", "kmeans"}, default all three
+        Peers computed from the same audio in the same run, through the same classifier:
+        MFCCs (20) with deltas, mean- and std-pooled; the model's own log-mel frames,
+        mean- and max-pooled; and context windows (the model's context) standardised and
+        ZCA-whitened on the training clips, coded with the triangle activation of k-means
+        centres fitted on those windows, k the model's hidden count (Coates, Lee & Ng
+        2011), pooled as the learned features.
     pools : sequence of {"mean", "max", "std"}, default ("max",)
         Pooling of the learned frame features over each clip (see :data:`PROBE_POOLS`).
     folds : int >= 2, default 5
@@ -303,7 +361,12 @@ def probe(
         fe = FrontEnd(FrontEndConfig(**meta["frontend"]))
         paths = [root / s for s in sources]
         for kind in baselines:
-            scores.append(_score(kind, BASELINE_POOLS, _baseline_features(kind, paths, fe), y,
-                                 classes, splits, seed))
+            if kind == "kmeans":
+                scores.append(_kmeans_score(paths, fe, int(meta["n_hidden"]), pools, y, classes,
+                                            splits, seed))
+            else:
+                scores.append(_score(kind, BASELINE_POOLS[kind],
+                                     _baseline_features(kind, paths, fe), y, classes, splits,
+                                     seed))
     return ProbeResult(classes=classes, scheme=scheme, n_train=len(splits[0][0]),
                        n_test=int(sum(len(t) for _, t in splits)), scores=scores)
