@@ -11,8 +11,8 @@ from timbrel import ParameterError
 from timbrel.cache import build_cache
 from timbrel.config import load_config
 from timbrel.evaluation import kmeans_triangle, probe, read_clip_features
-from timbrel.pooling import pool_frames
 from timbrel.export import export
+from timbrel.pooling import pool_frames
 from timbrel.training import train
 
 
