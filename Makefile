@@ -7,7 +7,7 @@ DEMO_OUT ?= out/demo
 # pytest selection for `make test`: everything but the slow checks (run by `make test-all`)
 TEST_ARGS ?= -m "not slow"
 
-.PHONY: demo test test-all bench lint speech-deps clean
+.PHONY: demo test test-all bench lint speech-deps bench-deps clean
 
 # The venv is rebuilt whenever pyproject.toml changes.
 $(VENV)/.installed: pyproject.toml
@@ -35,7 +35,20 @@ test: $(VENV)/.installed speech-deps
 test-all: $(VENV)/.installed speech-deps
 	$(PY) -m pytest
 
-bench: $(VENV)/.installed
+# The development suite of bench/bench_quality.py renders instrument notes with FluidSynth
+# from four sound sets and reads recorded drum kits (Debian packages, installed when
+# missing and this user may).
+BENCH_DEBS := fluidsynth fluid-soundfont-gm musescore-general-soundfont-small \
+	csound-soundfont timgm6mb-soundfont hydrogen-drumkits
+bench-deps:
+	@missing=$$(for p in $(BENCH_DEBS); do dpkg -s $$p >/dev/null 2>&1 || echo $$p; done); \
+	if [ -n "$$missing" ]; then \
+	  if [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
+	    echo "installing $$missing for the quality benchmark"; \
+	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq $$missing >/dev/null; \
+	  else echo "missing for bench_quality: $$missing (apt-get install them)"; fi; fi
+
+bench: $(VENV)/.installed speech-deps bench-deps
 	$(PY) bench/run.py --out bench/results.json
 
 lint: $(VENV)/.installed

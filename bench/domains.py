@@ -52,7 +52,7 @@ ROOT = HERE.parent
 DATA = Path(os.environ.get("TIMBREL_BENCH_DATA", "~/.cache/timbrel-bench")).expanduser()
 DOMAINS = ("speech", "instruments", "drums")
 SPLITS = ("train", "validation", "test")
-FORMAT = 2  # bump to rebuild every cached set
+FORMAT = 3  # bump to rebuild every cached set
 
 # --------------------------------------------------------------------------- instruments
 
@@ -127,7 +127,7 @@ def _build_instruments(folder: Path) -> list[dict[str, str]]:
             piece = audio[k * slot:k * slot + clip]
             path = f"clips/{name}_{k:04d}_{family}.flac"
             sf.write(folder / path, piece, rate, subtype="PCM_16")
-            rows.append({"path": path, "label": family, "split": split, "source": name,
+            rows.append({"path": path, "label": family, "split": split, "origin": name,
                          "program": str(program), "pitch": str(pitch),
                          "velocity": str(velocity)})
         wav.unlink()
@@ -202,7 +202,7 @@ def _build_drums(folder: Path) -> list[dict[str, str]]:
                 path = f"clips/{slug}_{kind}_{taken[kind]}.flac"
                 sf.write(folder / path, piece, rate, subtype="PCM_16")
                 taken[kind] += 1
-                rows.append({"path": path, "label": kind, "split": split, "source": kit,
+                rows.append({"path": path, "label": kind, "split": split, "origin": kit,
                              "sample": sample.name})
     return rows
 
@@ -229,7 +229,7 @@ def _build_speech(folder: Path) -> list[dict[str, str]]:
             split = ("train" if voice in DEFAULT_TRAIN_VOICES else
                      "validation" if voice in VALIDATION_VOICES else "test")
             rows.append({"path": f"words/{row['path']}", "label": row["label"], "split": split,
-                         "source": voice})
+                         "origin": voice})
     return rows
 
 
@@ -240,8 +240,9 @@ BUILDERS = {"speech": _build_speech, "instruments": _build_instruments, "drums":
 
 
 def build(domain: str, data: Path = DATA) -> Path:
-    """The domain's folder with ``manifest.csv`` (``path,label,split,source,...``),
-    built when missing (in a sibling folder, renamed into place when complete)."""
+    """The domain's folder with ``manifest.csv`` (``path,label,split,origin,...``; the
+    origin is the voice, sound set or kit), built when missing (in a sibling folder,
+    renamed into place when complete)."""
     out = data / domain
     stamp = out / f".complete-{FORMAT}"
     if stamp.is_file():
@@ -290,7 +291,7 @@ def describe(domain: str, data: Path = DATA) -> str:
     for split in SPLITS:
         part = [r for r in rows if r["split"] == split]
         labels = Counter(r["label"] for r in part)
-        sources = sorted({r["source"] for r in part})
+        sources = sorted({r["origin"] for r in part})
         lines.append(f"{domain:<12}{split:<11}{len(part):>5} clips, {len(labels)} classes "
                      f"({min(labels.values())}-{max(labels.values())} each), "
                      f"{len(sources)} sources: {', '.join(sources)}")

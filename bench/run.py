@@ -14,7 +14,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 BENCHES = ["bench_startup", "bench_frontend", "bench_training", "bench_export", "bench_scale",
-           "bench_stream", "bench_probe"]
+           "bench_stream", "bench_probe", "bench_quality"]
 # keeps the whole run under about ten minutes on 2 cores (float64 scikit-learn is
 # informative only; run bench_training.py alone for it)
 EXTRA_ARGS = {"bench_training": ["--repeats", "3", "--no-float64", "--profile"]}
@@ -74,6 +74,15 @@ def _targets(results: dict) -> list[tuple[str, str, str, bool]]:
                          f"{r['audio_seconds'] / 3600:g} h of audio; stages alone "
                          f"{r['stage_bound_realtime']:.0f}x; --compression none "
                          f"{r['uncompressed']['realtime_factor']:.0f}x", t["met"]))
+    if "bench_quality" in results and "test" in results["bench_quality"].get("targets", {}):
+        for domain, t in results["bench_quality"]["targets"]["test"].items():
+            rows.append((f"quality {domain}: relu ahead of every peer", "yes" if
+                         t["ahead_of_every_peer"] else "no",
+                         "test split, mean of 3 seeds (validation table beside it)",
+                         t["ahead_of_every_peer"]))
+            rows.append((f"quality {domain}: relu >= MFCC + 10 points",
+                         f"{t['points_over_mfcc']:+.1f}", "test split, mean of 3 seeds",
+                         t["ten_points_over_mfcc"]))
     if "bench_stream" in results:
         for r in results["bench_stream"]["runs"]:
             rows.append((f"stream keeps up at {r['sample_rate']} Hz (p99 push < "

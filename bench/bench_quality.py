@@ -1,0 +1,158 @@
+"""Feature quality on the development suite: the default model against every simple peer.
+
+For each domain of ``bench/domains.py`` (spoken words, instrument notes, drum hits) a
+frame cache of the *training* clips alone is built with the default configuration
+(or ``--override``s), and per seed two models are trained on it: the default (relu
+hiddens) and the same with binary hiddens. Each model exports the training clips with
+the held-out clips of a view, and the probe (standardised logistic regression, clips
+pooled as the probe pools by default) scores the held-out clips beside its peers:
+MFCC+delta, pooled log-mel, and the k-means triangle code (k = the model's hidden
+count, fitted on the training clips' windows with the same seed).
+
+Views: ``validation`` (the held-out sources used to choose defaults) and ``test``
+(scored once, after choosing). Printed: accuracy per domain and feature set, mean and
+spread (min-max) over the seeds, and whether the targets hold (relu ahead of every peer
+on every domain, at least 10 points ahead of MFCC, ahead of binary hiddens).
+
+Run: python bench/bench_quality.py [--views validation,test] [--seeds 0,1,2]
+     [--domains speech,instruments,drums] [--override KEY=VALUE ...] [--epochs N]
+     [--json FILE]
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import statistics
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+import domains  # noqa: E402
+from _timing import scratch_dir  # noqa: E402
+
+PEERS = ("mfcc", "logmel", "kmeans")
+TARGET_POINTS_OVER_MFCC = 10.0
+
+
+def _train_manifest(folder: Path) -> Path:
+    """The domain's training clips alone: what the model may learn from."""
+    with open(folder / "manifest.csv", newline="", encoding="utf-8") as fh:
+        rows = [r for r in csv.DictReader(fh) if r["split"] == "train"]
+    path = folder / "manifest_train.csv"
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+    return path
+
+
+def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[str],
+               work: Path) -> dict:
+    from timbrel.cache import build_cache
+    from timbrel.config import load_config
+    from timbrel.evaluation import probe
+    from timbrel.export import export
+    from timbrel.training import train
+
+    folder = domains.build(domain)
+    view_manifests = domains.views(domain)
+    cache = work / domain / "cache"
+    build_cache(_train_manifest(folder), cache, config=load_config(overrides=overrides))
+    scores: dict[str, dict[str, list[float]]] = {v: {} for v in views}
+    seconds: list[float] = []
+    for seed in seeds:
+        for hidden in ("relu", "binary"):
+            config = load_config(overrides=[*overrides, f'model.hidden="{hidden}"',
+                                            f"model.seed={seed}"])
+            model = work / domain / f"{hidden}-{seed}.npz"
+            began = time.perf_counter()
+            train(cache, model, config=config)
+            if hidden == "relu":
+                seconds.append(time.perf_counter() - began)
+            for view in views:
+                dataset = work / domain / f"{hidden}-{seed}-{view}"
+                export(view_manifests[view], model, dataset, overwrite=True)
+                result = probe(dataset, baselines=PEERS if hidden == "relu" else (), seed=seed)
+                for score in result.scores:
+                    name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
+                        score.name.split("-")[0]
+                    scores[view].setdefault(name, []).append(score.accuracy)
+    return {"scores": scores, "train_seconds_relu": seconds}
+
+
+def _summary(values: list[float]) -> dict:
+    return {"mean": statistics.mean(values), "min": min(values), "max": max(values),
+            "values": values}
+
+
+def table(results: dict, view: str) -> str:
+    names = ["rbm-relu", "rbm-binary", *PEERS]
+    lines = [f"{view} split, accuracy: mean over seeds [min-max]",
+             f"{'domain':<12}" + "".join(f"{n:>20}" for n in names)]
+    for domain, r in results.items():
+        row = r["scores"][view]
+        cells = []
+        for n in names:
+            v = row.get(n, [])
+            cells.append(f"{statistics.mean(v):.3f} [{min(v):.3f}-{max(v):.3f}]" if v else "-")
+        lines.append(f"{domain:<12}" + "".join(f"{c:>20}" for c in cells))
+    return "\n".join(lines)
+
+
+def targets(results: dict, view: str) -> dict:
+    met = {}
+    for domain, r in results.items():
+        mean = {n: statistics.mean(v) for n, v in r["scores"][view].items()}
+        relu = mean["rbm-relu"]
+        met[domain] = {
+            "ahead_of_every_peer": all(relu > mean[p] for p in PEERS),
+            "points_over_mfcc": round(100 * (relu - mean["mfcc"]), 1),
+            "ten_points_over_mfcc": 100 * (relu - mean["mfcc"]) >= TARGET_POINTS_OVER_MFCC,
+            "ahead_of_binary": relu > mean["rbm-binary"],
+        }
+    return met
+
+
+def main(argv: list[str] | None = None) -> dict:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--views", default="validation,test")
+    parser.add_argument("--seeds", default="0,1,2")
+    parser.add_argument("--domains", default=",".join(domains.DOMAINS))
+    parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE")
+    parser.add_argument("--epochs", type=int, default=None, help="shorthand override")
+    parser.add_argument("--keep", action="store_true")
+    parser.add_argument("--json", type=Path)
+    args = parser.parse_args(argv)
+    views = args.views.split(",")
+    seeds = [int(s) for s in args.seeds.split(",")]
+    overrides = list(args.override) + ([f"model.epochs={args.epochs}"] if args.epochs else [])
+    results = {}
+    with scratch_dir("timbrel-bench-quality-", keep=args.keep) as work:
+        for domain in args.domains.split(","):
+            print(domains.describe(domain))
+            began = time.perf_counter()
+            results[domain] = run_domain(domain, views, seeds, overrides, work)
+            print(f"{domain}: {time.perf_counter() - began:.0f} s")
+    out = {"overrides": overrides, "seeds": seeds, "domains": results,
+           "tables": {}, "targets": {}}
+    for view in views:
+        print(table(results, view))
+        out["tables"][view] = {d: {n: _summary(v) for n, v in r["scores"][view].items()}
+                               for d, r in results.items()}
+        out["targets"][view] = targets(results, view)
+        for domain, t in out["targets"][view].items():
+            print(f"  {view} {domain}: relu ahead of every peer {t['ahead_of_every_peer']}, "
+                  f"{t['points_over_mfcc']:+.1f} points over MFCC, ahead of binary "
+                  f"{t['ahead_of_binary']}")
+    if args.json:
+        args.json.write_text(json.dumps(out, indent=1))
+    return out
+
+
+if __name__ == "__main__":
+    main()
