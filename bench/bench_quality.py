@@ -52,7 +52,7 @@ def _train_manifest(folder: Path) -> Path:
 
 
 def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[str],
-               work: Path) -> dict:
+               work: Path, *, relu_only: bool = False) -> dict:
     from timbrel.cache import build_cache
     from timbrel.config import load_config
     from timbrel.evaluation import probe
@@ -66,7 +66,7 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
     scores: dict[str, dict[str, list[float]]] = {v: {} for v in views}
     seconds: list[float] = []
     for seed in seeds:
-        for hidden in ("relu", "binary"):
+        for hidden in ("relu",) if relu_only else ("relu", "binary"):
             config = load_config(overrides=[*overrides, f'model.hidden="{hidden}"',
                                             f"model.seed={seed}"])
             model = work / domain / f"{hidden}-{seed}.npz"
@@ -77,7 +77,8 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
             for view in views:
                 dataset = work / domain / f"{hidden}-{seed}-{view}"
                 export(view_manifests[view], model, dataset, overwrite=True)
-                result = probe(dataset, baselines=PEERS if hidden == "relu" else (), seed=seed)
+                peers = PEERS if hidden == "relu" and not relu_only else ()
+                result = probe(dataset, baselines=peers, seed=seed)
                 for score in result.scores:
                     name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
                         score.name.split("-")[0]
@@ -108,6 +109,8 @@ def targets(results: dict, view: str) -> dict:
     met = {}
     for domain, r in results.items():
         mean = {n: statistics.mean(v) for n, v in r["scores"][view].items()}
+        if not all(n in mean for n in ("rbm-binary", *PEERS)):
+            continue  # a screening run (--relu-only) has nothing to compare with
         relu = mean["rbm-relu"]
         met[domain] = {
             "ahead_of_every_peer": all(relu > mean[p] for p in PEERS),
@@ -126,6 +129,8 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE")
     parser.add_argument("--epochs", type=int, default=None, help="shorthand override")
     parser.add_argument("--keep", action="store_true")
+    parser.add_argument("--relu-only", action="store_true",
+                        help="only the relu models, no binary and no peers (to screen a lever)")
     parser.add_argument("--json", type=Path)
     args = parser.parse_args(argv)
     views = args.views.split(",")
@@ -136,7 +141,8 @@ def main(argv: list[str] | None = None) -> dict:
         for domain in args.domains.split(","):
             print(domains.describe(domain))
             began = time.perf_counter()
-            results[domain] = run_domain(domain, views, seeds, overrides, work)
+            results[domain] = run_domain(domain, views, seeds, overrides, work,
+                                         relu_only=args.relu_only)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
     out = {"overrides": overrides, "seeds": seeds, "domains": results,
            "tables": {}, "targets": {}}
