@@ -86,6 +86,17 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
     return {"scores": scores, "train_seconds_relu": seconds}
 
 
+def demo_fit_seconds(work: Path) -> float:
+    """Wall time of the default fit on the demo cache (target: under a minute on 2 cores)."""
+    from timbrel.cache import build_cache
+    from timbrel.training import train
+
+    build_cache(HERE.parent / "demo_audio" / "manifest.csv", work / "demo-cache")
+    began = time.perf_counter()
+    train(work / "demo-cache", work / "demo-model.npz")
+    return time.perf_counter() - began
+
+
 def _summary(values: list[float]) -> dict:
     return {"mean": statistics.mean(values), "min": min(values), "max": max(values),
             "values": values}
@@ -129,6 +140,8 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE")
     parser.add_argument("--epochs", type=int, default=None, help="shorthand override")
     parser.add_argument("--keep", action="store_true")
+    parser.add_argument("--no-demo", dest="overrides_only", action="store_true",
+                        help="skip timing the default fit on the demo cache")
     parser.add_argument("--relu-only", action="store_true",
                         help="only the relu models, no binary and no peers (to screen a lever)")
     parser.add_argument("--json", type=Path)
@@ -144,8 +157,11 @@ def main(argv: list[str] | None = None) -> dict:
             results[domain] = run_domain(domain, views, seeds, overrides, work,
                                          relu_only=args.relu_only)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
+        demo_seconds = None if args.overrides_only else demo_fit_seconds(work)
     out = {"overrides": overrides, "seeds": seeds, "domains": results,
-           "tables": {}, "targets": {}}
+           "tables": {}, "targets": {}, "demo_fit_seconds": demo_seconds}
+    if demo_seconds is not None:
+        print(f"default fit on the demo cache: {demo_seconds:.1f} s (target under 60 s)")
     for view in views:
         print(table(results, view))
         out["tables"][view] = {d: {n: _summary(v) for n, v in r["scores"][view].items()}
