@@ -140,7 +140,7 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE")
     parser.add_argument("--epochs", type=int, default=None, help="shorthand override")
     parser.add_argument("--keep", action="store_true")
-    parser.add_argument("--no-demo", dest="overrides_only", action="store_true",
+    parser.add_argument("--no-demo", action="store_true",
                         help="skip timing the default fit on the demo cache")
     parser.add_argument("--relu-only", action="store_true",
                         help="only the relu models, no binary and no peers (to screen a lever)")
@@ -157,7 +157,7 @@ def main(argv: list[str] | None = None) -> dict:
             results[domain] = run_domain(domain, views, seeds, overrides, work,
                                          relu_only=args.relu_only)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
-        demo_seconds = None if args.overrides_only else demo_fit_seconds(work)
+        demo_seconds = None if args.no_demo else demo_fit_seconds(work)
     out = {"overrides": overrides, "seeds": seeds, "domains": results,
            "tables": {}, "targets": {}, "demo_fit_seconds": demo_seconds}
     if demo_seconds is not None:
