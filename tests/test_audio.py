@@ -86,6 +86,18 @@ def test_missing_source(tmp_path):
         discover(tmp_path / "nope")
 
 
+def test_a_source_without_clips_is_an_error(tmp_path):
+    # "0 of 0 files cached" with exit 0 hid a wrong folder or an empty manifest
+    (tmp_path / "readme.txt").write_text("no audio here")
+    (tmp_path / "sub").mkdir()
+    with pytest.raises(ParameterError, match=r"no audio files .*searched for \.wav, \.flac"):
+        discover(tmp_path)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,label\n")
+    with pytest.raises(ParameterError, match=r"m\.csv: the manifest lists no files"):
+        discover(manifest)
+
+
 @pytest.mark.parametrize("subtype", ["PCM_16", "PCM_24", "PCM_32", "FLOAT", "DOUBLE"])
 def test_stereo_downmix_is_channel_mean(tmp_path, rng, subtype):
     # common practice: mono downmix = average of the channels

@@ -2,13 +2,21 @@
 
 from __future__ import annotations
 
+import contextlib
+import os
+import signal
+import subprocess
 import sys
 import threading
+import time
+from pathlib import Path
 
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from timbrel import TimbrelError, _workers
+from timbrel._atomic import LOCK_NAME, folder_lock
 from timbrel._workers import even_chunks, start_method, task_results
 
 
@@ -87,3 +95,104 @@ def test_a_killed_worker_is_one_clear_error_not_a_traceback():
         with task_results(_die_on_three, list(range(8)), 2) as results:
             list(results)
     assert issubclass(WorkerError, TimbrelError)  # so the command line prints one line
+
+
+def _state(pid: int) -> str | None:
+    """A process's state letter from /proc (``Z`` for a zombie), or None once it is gone."""
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return None
+
+
+def _ends_within(pid: int, seconds: float) -> bool:
+    """Whether ``pid`` stops running (gone or a zombie) within ``seconds``."""
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if _state(pid) in (None, "Z"):
+            return True
+        time.sleep(0.01)
+    return False
+
+
+# a middle process forks a child that calls the guard, then is SIGKILLed by the test
+_ORPHAN_SCRIPT = """
+import os, sys, time
+from timbrel import _workers
+pid = os.fork()
+if pid == 0:
+    if sys.argv[1] == "watcher":
+        _workers._watch_parent(os.getppid())
+    else:
+        _workers._die_with_parent(os.getppid())
+    time.sleep(60)
+    os._exit(0)
+print(pid, flush=True)
+time.sleep(60)
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+@pytest.mark.parametrize("guard", ["prctl", "watcher"])
+def test_a_worker_ends_with_its_parent(guard):
+    # prctl(PR_SET_PDEATHSIG) on Linux, a thread watching getppid() elsewhere: either way
+    # the child of a SIGKILLed parent ends within a second (the issue's bound)
+    middle = subprocess.Popen([sys.executable, "-c", _ORPHAN_SCRIPT, guard],
+                              stdout=subprocess.PIPE, text=True)
+    child = 0
+    try:
+        child = int(middle.stdout.readline())
+        assert _state(child) not in (None, "Z")
+        time.sleep(0.3)  # the guard is set up (a thread started, or prctl called)
+        assert _state(child) not in (None, "Z")  # it does not end while the parent lives
+        middle.kill()
+        middle.wait()
+        assert _ends_within(child, 1.0 + _workers.WATCH_INTERVAL)
+    finally:
+        middle.kill()
+        middle.wait()
+        middle.stdout.close()
+        if child and _state(child) not in (None, "Z"):
+            os.kill(child, signal.SIGKILL)
+
+
+def _lock_descriptors(_: int) -> list[str]:
+    targets = []
+    for fd in os.listdir("/proc/self/fd"):
+        with contextlib.suppress(OSError):
+            targets.append(os.readlink(f"/proc/self/fd/{fd}"))
+    return [t for t in targets if t.endswith("/" + LOCK_NAME)]
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_workers_do_not_keep_the_folder_lock(tmp_path):
+    # a worker's copy of the lock's descriptor kept the lock after the run was killed
+    with folder_lock(tmp_path, error=TimbrelError, busy="busy"):
+        assert _lock_descriptors(0)  # the check sees this process's own lock
+        with task_results(_lock_descriptors, [0, 1, 2, 3], 2) as results:
+            assert list(results) == [[], [], [], []]
+    # and a lock held by a live run names its process
+    with folder_lock(tmp_path, error=TimbrelError, busy="busy"):
+        with pytest.raises(TimbrelError, match=rf"busy \(process {os.getpid()}\)"):
+            with folder_lock(tmp_path, error=TimbrelError, busy="busy"):
+                pass
+
+
+def _note_pid_and_sleep(folder: str) -> None:
+    Path(folder, str(os.getpid())).touch()
+    time.sleep(60)
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_an_interrupt_ends_the_workers_at_once(tmp_path):
+    # leaving the block by an exception does not wait for the running tasks (60 s each)
+    t0 = time.monotonic()
+    with pytest.raises(KeyboardInterrupt):
+        with task_results(_note_pid_and_sleep, [str(tmp_path)] * 3, 2):
+            while len(list(tmp_path.iterdir())) < 2:
+                time.sleep(0.01)
+            raise KeyboardInterrupt
+    pids = [int(p.name) for p in tmp_path.iterdir()]
+    assert len(pids) == 2 and all(_state(pid) in (None, "Z") for pid in pids)
+    assert time.monotonic() - t0 < 60  # the running tasks were not waited for

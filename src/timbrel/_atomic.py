@@ -5,7 +5,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
@@ -30,13 +30,15 @@ def make_folder(path: str | Path) -> Path:
 
 
 @contextlib.contextmanager
-def atomic_path(path: str | Path) -> Iterator[Path]:
+def atomic_path(path: str | Path, *, before_publish: Callable[[], None] | None = None
+                ) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` when the block succeeds.
 
     The temporary file is removed if the block raises. Data are flushed to disk before
     the rename so the rename publishes a complete file. An ``OSError`` while creating,
     writing, flushing or renaming (disk full, I/O error) becomes an :class:`OutputError`
-    naming ``path``.
+    naming ``path``. ``before_publish``, if given, is called just before the rename; an
+    exception from it discards the file instead of publishing it.
     """
     path = Path(path)
     try:
@@ -53,6 +55,8 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
+        if before_publish is not None:
+            before_publish()
         os.replace(tmp_path, path)
     except BaseException as exc:
         with contextlib.suppress(OSError):
@@ -89,6 +93,9 @@ def remove_stale_temporaries(folder: str | Path, *, names: Iterable[str] | None 
 
 
 LOCK_NAME = ".lock"
+#: Descriptors of the folder locks this process holds; a worker forked from it closes
+#: them first thing (``timbrel._workers``), so the lock is the running command's alone.
+HELD_LOCK_FDS: set[int] = set()
 
 
 @contextlib.contextmanager
@@ -97,9 +104,11 @@ def folder_lock(folder: str | Path, *, error: type[TimbrelError], busy: str) -> 
 
     Two runs writing into one output folder would interleave their files and records.
     The lock is an advisory ``flock``, released by the system when the process ends, so
-    a killed run never leaves it held. Worker processes forked by the run share it, so
-    it stays held until the last of them has ended too: while one lives, the run is
-    still writing. A held lock raises ``error(f"{folder}: {busy}")``.
+    a killed run never leaves it held. Workers do not keep it (they close its
+    descriptor as they start, and die with the run: see ``timbrel._workers``), so a
+    re-run started the moment a run is killed takes it. The file holds the owner's
+    process id, which a refusal names. A held lock raises
+    ``error(f"{folder}: {busy} (process N)")``.
     """
     import fcntl
 
@@ -108,12 +117,23 @@ def folder_lock(folder: str | Path, *, error: type[TimbrelError], busy: str) -> 
         fh = open(path, "a+")
     except OSError as exc:
         raise OutputError(path, os_reason(exc)) from None
+    fd = fh.fileno()
     try:
         try:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
-            raise error(f"{folder}: {busy}") from None
+            fh.seek(0)
+            owner = fh.read().strip()
+            raise error(f"{folder}: {busy}" + (f" (process {owner})" if owner.isdigit()
+                                               else "")) from None
+        HELD_LOCK_FDS.add(fd)
+        with contextlib.suppress(OSError):
+            fh.seek(0)
+            fh.truncate()
+            fh.write(f"{os.getpid()}\n")
+            fh.flush()
         yield
     finally:
+        HELD_LOCK_FDS.discard(fd)
         fh.close()
 

@@ -6,21 +6,110 @@ Linux a pool is forked from the calling process when that process runs no other
 Python thread (forking with threads alive can copy a lock held by one of them).
 Otherwise a fork server is started once, with the stage modules imported in it, and
 the workers are forked from that. Other systems spawn.
+
+A worker never outlives the run that started it. Every worker starts in
+:func:`_init_worker`, which asks Linux to send it SIGKILL when its parent dies
+(``prctl(PR_SET_PDEATHSIG)``; elsewhere a thread notices the parent is gone), drops
+the descriptors of the run's folder locks (so the lock is the running command's
+alone) and leaves SIGINT to the parent, which stops the pool. Without this a run
+killed by the out-of-memory killer left its workers blocked in the pool's queue for
+good, holding the output folder's lock.
 """
 
 from __future__ import annotations
 
 import concurrent.futures
 import contextlib
+import ctypes
 import multiprocessing
+import os
+import signal
 import sys
 import threading
+import time
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any, TypeVar
 
+from ._atomic import HELD_LOCK_FDS
 from ._errors import WorkerError
 
 Result = TypeVar("Result")
+
+#: Seconds between two looks at the parent in the portable watcher.
+WATCH_INTERVAL = 0.2
+#: Seconds a stopped pool's workers get to end after SIGTERM before SIGKILL.
+STOP_GRACE = 2.0
+_PR_SET_PDEATHSIG = 1
+
+
+class Interrupted(KeyboardInterrupt):
+    """A run stopped by SIGINT or SIGTERM after it put its workers down.
+
+    ``kept`` says, in one line, what the run leaves for a re-run; ``signum`` is the
+    signal that stopped it (the command line exits with ``128 + signum``).
+    """
+
+    def __init__(self, kept: str, signum: int = signal.SIGINT) -> None:
+        super().__init__(kept)
+        self.kept = kept
+        self.signum = signum
+
+
+def _die_with_parent(main: int) -> None:
+    """End this process when its parent ends; ``main`` is the process that made the pool.
+
+    The parent is ``main`` itself (fork, spawn) or a fork server, which ends when
+    ``main`` ends (it reads EOF on a pipe from ``main``).
+    """
+    parent = os.getppid()
+    if parent != main and not _alive(main):
+        os._exit(1)  # main died before this worker got here
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            ok = libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0) == 0
+        except (OSError, AttributeError):
+            ok = False
+        if ok:
+            # the parent may have died between the look above and prctl: no signal then
+            if os.getppid() != parent:
+                os._exit(1)
+            return
+    threading.Thread(target=_watch_parent, args=(parent,), name="timbrel-parent-watch",
+                     daemon=True).start()
+
+
+def _alive(pid: int) -> bool:
+    # POSIX only (it is reached only where a fork server exists)
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _watch_parent(parent: int) -> None:
+    # portable fallback: a dead parent's children are handed to another process
+    while os.getppid() == parent:
+        time.sleep(WATCH_INTERVAL)
+    os._exit(1)
+
+
+def _init_worker(main: int) -> None:
+    """Initialiser of every pool worker: die with the run, hold no lock, ignore Ctrl-C."""
+    _die_with_parent(main)
+    # a forked worker's copy of a lock's descriptor would keep the lock held after
+    # the run's death; the lock belongs to the running command alone
+    for fd in HELD_LOCK_FDS:
+        with contextlib.suppress(OSError):
+            os.close(fd)
+    HELD_LOCK_FDS.clear()
+    # Ctrl-C reaches the whole foreground group; the parent stops the pool on it. A
+    # SIGTERM handler the parent installed is not the worker's: SIGTERM ends a worker.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
 def start_method() -> str:
@@ -46,8 +135,10 @@ def task_results(function: Callable[[Any], Result], tasks: Sequence[Any], worker
     With one worker or one task everything runs in this process, one task per step of
     the iterator. Otherwise every task is submitted to a pool of ``workers`` processes
     on entry, so the pool starts before the caller starts any thread of its own (a
-    progress bar, say) and can still be forked. Leaving the block waits for running
-    tasks and cancels the rest.
+    progress bar, say) and can still be forked. Leaving the block normally waits for
+    running tasks; leaving it by an exception (Ctrl-C, SIGTERM, an error) cancels the
+    waiting tasks and ends the workers at once (SIGTERM, then SIGKILL after
+    :data:`STOP_GRACE` seconds), so nothing of the run outlives it.
 
     Parameters
     ----------
@@ -67,14 +158,34 @@ def task_results(function: Callable[[Any], Result], tasks: Sequence[Any], worker
     context = multiprocessing.get_context(method)
     if method == "forkserver" and preload:
         context.set_forkserver_preload(list(preload))
-    with concurrent.futures.ProcessPoolExecutor(max_workers=min(workers, len(tasks)),
-                                                mp_context=context) as pool:
+    pool = concurrent.futures.ProcessPoolExecutor(
+        max_workers=min(workers, len(tasks)), mp_context=context,
+        initializer=_init_worker, initargs=(os.getpid(),))
+    try:
         futures = [pool.submit(function, task) for task in tasks]
-        try:
-            yield _completed(futures)
-        finally:
-            for future in futures:
-                future.cancel()
+        yield _completed(futures)
+    except BaseException:
+        _stop(pool)
+        raise
+    pool.shutdown(wait=True)
+
+
+def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
+    """Cancel what waits and end the workers now, rather than wait for running tasks."""
+    # the executor keeps its processes in a private mapping; there is no public way to
+    # end a running task
+    processes = list(getattr(pool, "_processes", {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes:
+        with contextlib.suppress(OSError, ValueError):
+            process.terminate()
+    deadline = time.monotonic() + STOP_GRACE
+    for process in processes:
+        with contextlib.suppress(ValueError):
+            process.join(max(0.0, deadline - time.monotonic()))
+            if process.is_alive():
+                process.kill()
+                process.join(1.0)
 
 
 def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:

@@ -121,14 +121,23 @@ def discover(source: str | Path, *, allow_outside: bool = False
     Raises
     ------
     ParameterError
-        If the source does not exist, the manifest lacks a ``path`` column, repeats
-        a path, or names a path outside its folder without ``allow_outside``.
+        If the source does not exist, holds no audio file (a folder) or no row (a
+        manifest), the manifest lacks a ``path`` column, repeats a path, or names a path
+        outside its folder without ``allow_outside``.
     """
     root = Path(source)
     if root.is_dir():
-        return _discover_folder(root), []
+        items = _discover_folder(root)
+        if not items:
+            raise ParameterError(f"{root}: no audio files in this folder or below (searched "
+                                 f"for {', '.join(AUDIO_EXTENSIONS)})")
+        return items, []
     if root.is_file() and root.suffix.lower() == ".csv":
-        return _discover_manifest(root, allow_outside=allow_outside)
+        items, extra_columns = _discover_manifest(root, allow_outside=allow_outside)
+        if not items:
+            raise ParameterError(f"{root}: the manifest lists no files (no row below its "
+                                 "header)")
+        return items, extra_columns
     if root.is_file():
         raise ParameterError(f"{root}: a source must be a folder or a manifest .csv")
     raise ParameterError(f"{root}: no such folder or manifest")

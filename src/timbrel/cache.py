@@ -45,7 +45,7 @@ from ._atomic import (
 from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
-from ._workers import even_chunks, task_results
+from ._workers import Interrupted, even_chunks, task_results
 from .audio import (
     AudioItem,
     counted_blocks,
@@ -254,6 +254,9 @@ def build_cache(
         If the source is missing or malformed, or ``out`` is not a usable folder.
     CacheError
         If another run is writing into ``out`` (it holds ``out/.lock``).
+    timbrel._workers.Interrupted
+        On Ctrl-C (or SIGTERM, as the command line turns it into one): the workers are
+        stopped, temporaries removed, finished shards kept for a re-run to reuse.
     """
     t0 = time.perf_counter()
     config = config or Config()
@@ -264,8 +267,24 @@ def build_cache(
     make_folder(out / "shards")
     with folder_lock(out, error=CacheError, busy="another `frames` run is writing into this "
                      "cache (lock held); wait for it or choose another --out"):
-        return _build_locked(source, out, items, extra_columns, config=config,
-                             workers=workers, progress=progress, t0=t0)
+        try:
+            return _build_locked(source, out, items, extra_columns, config=config,
+                                 workers=workers, progress=progress, t0=t0)
+        except KeyboardInterrupt:
+            raise _interrupted(out, config.frontend.frame_key(), len(items)) from None
+
+
+def _interrupted(out: Path, frame_key: str, n_files: int) -> Interrupted:
+    """What a stopped run leaves: finished shards kept, temporaries removed.
+
+    The workers have already ended (:func:`timbrel._workers.task_results`); a re-run
+    reuses every clip of a finished shard."""
+    remove_stale_temporaries(out)
+    remove_stale_temporaries(out / "shards")
+    kept = len(_read_sidecars(out / "shards", frame_key))
+    return Interrupted(f"{out}: interrupted; the frames of {kept} of {n_files} files are "
+                       "kept in finished shards, partial shards removed; run the same "
+                       "command again to continue")
 
 
 def _build_locked(source: str | Path, out: Path, items: list[AudioItem],

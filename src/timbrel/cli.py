@@ -6,12 +6,16 @@ as one line; anything else is a bug and keeps its traceback.
 
 Exit codes: 0 success; 1 a timbrel error (bad input, bad config, damaged file);
 2 a usage error (unknown option, out-of-range value); 3 with ``--strict``, some input
-files could not be used (the work on every other file is kept).
+files could not be used (the work on every other file is kept); 130 stopped by Ctrl-C
+(SIGINT), 143 stopped by SIGTERM (128 + the signal's number, as shells report it), after
+one line saying what the run kept.
 """
 
 from __future__ import annotations
 
+import signal
 import sys
+import threading
 from enum import Enum
 from pathlib import Path
 from typing import Annotated
@@ -24,16 +28,37 @@ from ._errors import TimbrelError
 
 EXIT_ERROR = 1
 EXIT_FAILED_FILES = 3
+EXIT_SIGNAL = 128  # + the signal's number
+
 
 class _Commands(TyperGroup):
-    """Catches the package's own errors, once, for every command."""
+    """Catches the package's own errors, once, for every command, and SIGINT/SIGTERM.
+
+    SIGTERM is turned into the same ``KeyboardInterrupt`` as Ctrl-C, so a stage stops
+    its workers and says what it kept (``Interrupted.kept``) either way.
+    """
 
     def invoke(self, ctx):  # type: ignore[no-untyped-def]
+        received = [signal.SIGINT]
+
+        def on_sigterm(signum, frame):  # type: ignore[no-untyped-def]
+            received[0] = signal.SIGTERM
+            raise KeyboardInterrupt
+
+        main_thread = threading.current_thread() is threading.main_thread()
+        previous = signal.signal(signal.SIGTERM, on_sigterm) if main_thread else None
         try:
             return super().invoke(ctx)
         except TimbrelError as exc:
             _err(f"timbrel: error: {exc}")
             ctx.exit(EXIT_ERROR)
+        except KeyboardInterrupt as exc:
+            kept = getattr(exc, "kept", "")
+            _err(f"timbrel: stopped by {received[0].name}" + (f": {kept}" if kept else ""))
+            ctx.exit(EXIT_SIGNAL + received[0])
+        finally:
+            if main_thread:
+                signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
 
 
 app = typer.Typer(

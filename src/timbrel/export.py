@@ -21,11 +21,13 @@ import contextlib
 import csv
 import dataclasses
 import fnmatch
+import functools
 import hashlib
 import json
 import os
 import time
-from collections.abc import Iterator, Sequence
+import uuid
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -47,7 +49,7 @@ from ._atomic import (
 from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
-from ._workers import even_chunks, task_results
+from ._workers import Interrupted, even_chunks, task_results
 from .audio import AudioItem, counted_blocks, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -211,7 +213,8 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     done: list[dict[str, Any]] = []
     failures: list[tuple[str, str]] = []
     clip_rows: list[dict[str, Any]] = []
-    with atomic_path(part) as tmp:
+    still_ours = functools.partial(_check_run, out, task.get("run"))
+    with atomic_path(part, before_publish=still_ours) as tmp:
         writer = pq.ParquetWriter(tmp, schema, **_write_options(schema, task["compression"]))
         try:
             for job in task["jobs"]:
@@ -236,8 +239,26 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             writer.close()
         if pools:
             _write_clip_part(out / CLIPS_DIR / f"part-{task['id']}.parquet", clip_rows,
-                             n_hidden, pools, extra_columns, metadata, task["compression"])
+                             n_hidden, pools, extra_columns, metadata, task["compression"],
+                             before_publish=still_ours)
     return {"id": task["id"], "done": done, "failures": failures}
+
+
+def _check_run(out: Path, run: str | None) -> None:
+    """Refuse to publish a part for a run that a later run has replaced.
+
+    A Dask cluster finishes the tasks of a client that was killed; when the client is
+    started again it chunks the remaining clips anew, so such a task's part would repeat
+    clips of the new run's parts. The new run writes its own token into the run record
+    before it submits anything.
+    """
+    try:
+        current = json.loads((out / RECORD).read_text(encoding="utf-8")).get("run")
+    except (OSError, ValueError):
+        current = None
+    if current != run:
+        raise ExportError(f"{out}: a later export run took over this folder; "
+                          "this task's part is discarded")
 
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
@@ -371,7 +392,8 @@ def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[st
 
 def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
-                     metadata: dict[bytes, bytes], compression: str) -> None:
+                     metadata: dict[bytes, bytes], compression: str, *,
+                     before_publish: Callable[[], None] | None = None) -> None:
     schema = clip_schema(n_hidden, pools, extra_columns, metadata=metadata)
     arrays: list[pa.Array] = [
         _string_array([r["source"] for r in rows]),
@@ -383,16 +405,18 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
         arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat),
                                                         type=_vector_type(n_hidden)))
     arrays.extend(_string_array([r[c] for r in rows]) for c in extra_columns)
-    with atomic_path(path) as tmp:
+    with atomic_path(path, before_publish=before_publish) as tmp:
         pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
                        **_write_options(schema, compression))
 
 
 # ----------------------------------------------------------------------------- driver side
 
-def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
-    """Sources already in complete parts of this model, and parts of another model."""
+def _finished_parts(out: Path, checksum: str) -> tuple[set[str], set[str], list[Path]]:
+    """Sources already in complete parts of this model, the names of those parts, and
+    parts of another model."""
     done: set[str] = set()
+    names: set[str] = set()
     foreign: list[Path] = []
     for part in sorted(out.glob("part-*.parquet")):
         try:
@@ -405,8 +429,9 @@ def _finished_parts(out: Path, checksum: str) -> tuple[set[str], list[Path]]:
         if info.get("model_checksum") != checksum:
             foreign.append(part)
         else:
+            names.add(part.name)
             done.update(src for src in info.get("sources", []) if src not in failed)
-    return done, foreign
+    return done, names, foreign
 
 
 def export(
@@ -467,8 +492,33 @@ def export(
     ExportError
         If the folder holds another model's dataset, another export holds its lock, or
         the config disagrees with the model.
+    timbrel._workers.Interrupted
+        On Ctrl-C (or SIGTERM, as the command line turns it into one): the workers are
+        stopped, temporaries removed, finished parts kept for a re-run to resume from.
     """
     t0 = time.perf_counter()
+    pools = _checked_options(layout, compression, pool)
+    pipe = load_pipeline(model)
+    _check_config(config, pipe, model)
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise ParameterError(f"{out}: output exists and is not a folder")
+    if out.is_dir():
+        _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
+    make_folder(out)
+    with folder_lock(out, error=ExportError, busy="another export is writing into this "
+                     "folder (lock held); wait for it or choose another --out"):
+        try:
+            return _export_locked(source, model, out, pipe, workers=workers,
+                                  scheduler=scheduler, layout=layout, pools=pools,
+                                  compression=compression, overwrite=overwrite,
+                                  allow_outside=allow_outside, progress=progress, t0=t0)
+        except KeyboardInterrupt:
+            raise _interrupted(out, pipe.checksum) from None
+
+
+def _checked_options(layout: str, compression: str, pool: Sequence[str]) -> list[str]:
+    """The poolings asked for, without repeats; refuse an unknown layout, codec or pooling."""
     if layout not in LAYOUTS:
         raise ParameterError(f"layout = {layout!r} is not one of {', '.join(LAYOUTS)}")
     if compression not in CODEC_LEVELS:
@@ -478,7 +528,11 @@ def export(
     bad = [p for p in pools if p not in POOLS]
     if bad:
         raise ParameterError(f"pool {bad} not among {', '.join(POOLS)}")
-    pipe = load_pipeline(model)
+    return pools
+
+
+def _check_config(config: Config | None, pipe: FeaturePipeline, model: str | Path) -> None:
+    """Refuse a config whose front end differs from the model's."""
     fe = pipe.config.frontend
     if config is not None and config.frontend != fe:
         diffs = [f"{f.name}: config {getattr(config.frontend, f.name)!r}, model "
@@ -487,80 +541,129 @@ def export(
         raise ExportError(f"{model}: the configuration disagrees with the model's front end "
                           f"({'; '.join(diffs)}); export always frames audio as the model "
                           "was trained")
-    out = Path(out)
-    if out.exists() and not out.is_dir():
-        raise ParameterError(f"{out}: output exists and is not a folder")
-    if out.is_dir():
-        _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
-    make_folder(out)
-    with folder_lock(out, error=ExportError, busy="another export is writing into this "
-                     "folder (lock held); wait for it or choose another --out"):
-        _check_only_ours(out)
-        if overwrite:
-            _clear(out)
-        if pools:
-            make_folder(out / CLIPS_DIR)
-        remove_stale_temporaries(out)
-        remove_stale_temporaries(out / CLIPS_DIR)
-        _drop_orphan_clip_parts(out)
-        record = _read_record(out)
-        if record and record.get("model_checksum") != pipe.checksum:
-            raise ExportError(f"{out}: holds a dataset of another model "
-                              f"({record.get('model', '?')}); pass --overwrite to replace it")
-        if record and (record.get("layout"), record.get("pool")) != (layout, pools):
-            raise ExportError(f"{out}: holds a dataset written with layout "
-                              f"{record.get('layout')!r} and pool {record.get('pool')}; "
-                              "use the same options or --overwrite")
-        done, foreign = _finished_parts(out, pipe.checksum)
-        if foreign:
-            raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
-                              "pass --overwrite to replace them")
-        jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
-                                                            allow_outside=allow_outside)
-        metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
-                    "hidden": pipe.rbm.hidden, "n_hidden": int(pipe.rbm.n_hidden),
-                    "frontend": dataclasses.asdict(fe), "config": pipe.config.to_dict(),
-                    "timbrel": __version__, "layout": layout, "pool": pools,
-                    "audio_root": audio_root,
-                    "exported": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
-        record = {**metadata, "complete": False, "extra_columns": extra_columns}
-        _write_record(out, record)
-        todo = [j for j in jobs if j["source"] not in done]
-        n_workers = max(1, workers or os.cpu_count() or 1)
-        tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
-                  "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
-                  "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path,
-                  "compression": compression}
-                 for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
-        # forked workers inherit the loaded model instead of reading it again
-        _PIPELINES[_pipeline_key(str(model), pipe.checksum)] = pipe
-        failures: dict[str, str] = {}
-        n_frames = 0
-        seconds = 0.0
-        # the local pool starts before the progress bar's thread, so it can be forked
-        with (_dask_results(tasks, scheduler) if scheduler
-              else task_results(_export_task, tasks, n_workers, preload=[__name__])) as results, \
-                progress_bar(progress) as bar:
-            task_id = bar.add_task("export", total=len(jobs), info="")
-            bar.advance(task_id, len(jobs) - len(todo))
-            for result in results:
-                for d in result["done"]:
-                    n_frames += d["n_frames"]
-                    seconds += d["duration_s"]
-                failures.update(result["failures"])
-                bar.advance(task_id, len(result["done"]) + len(result["failures"]))
-                elapsed = max(time.perf_counter() - t0, 1e-9)
-                bar.update(task_id, info=f"{n_frames / elapsed:.0f} frames/s, "
-                           f"{seconds / 3600 / elapsed * 3600:.2f} audio-h/h")
-        _write_failures(out, failures)
-        finished, _ = _finished_parts(out, pipe.checksum)
-        record.update(complete=True, n_sources=len(finished),
-                      finished_sources=sorted(finished))
-        _write_record(out, record)
+
+
+def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: FeaturePipeline,
+                   *, workers: int | None, scheduler: str | None, layout: str,
+                   pools: list[str], compression: str, overwrite: bool, allow_outside: bool,
+                   progress: bool, t0: float) -> ExportSummary:
+    """The body of :func:`export`, run while holding the dataset folder's lock."""
+    done, done_parts = _prepare_folder(out, pipe, layout=layout, pools=pools,
+                                       overwrite=overwrite)
+    jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
+                                                        allow_outside=allow_outside)
+    metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
+                "hidden": pipe.rbm.hidden, "n_hidden": int(pipe.rbm.n_hidden),
+                "frontend": dataclasses.asdict(pipe.config.frontend),
+                "config": pipe.config.to_dict(), "timbrel": __version__, "layout": layout,
+                "pool": pools, "audio_root": audio_root,
+                "exported": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+    # a new run token: tasks of an earlier run still running on a Dask cluster (its
+    # client was killed) see it and discard their parts instead of publishing them
+    run = uuid.uuid4().hex
+    record = {**metadata, "complete": False, "extra_columns": extra_columns, "run": run}
+    _write_record(out, record)
+    todo = [j for j in jobs if j["source"] not in done]
+    n_workers = max(1, workers or os.cpu_count() or 1)
+    tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
+              "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
+              "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path,
+              "compression": compression, "run": run}
+             for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
+    # forked workers inherit the loaded model instead of reading it again
+    _PIPELINES[_pipeline_key(str(model), pipe.checksum)] = pipe
+    n_frames, seconds, failures = _run_tasks(tasks, scheduler=scheduler, workers=n_workers,
+                                             n_jobs=len(jobs), n_skipped=len(jobs) - len(todo),
+                                             progress=progress, t0=t0)
+    _drop_parts_of_other_runs(out, keep=done_parts | {f"part-{t['id']}.parquet" for t in tasks})
+    _write_failures(out, failures)
+    finished, _, _ = _finished_parts(out, pipe.checksum)
+    record.update(complete=True, n_sources=len(finished), finished_sources=sorted(finished))
+    _write_record(out, record)
     return ExportSummary(path=out, n_files=len(jobs), n_clips=len(todo) - len(failures),
                          n_skipped=len(jobs) - len(todo), n_frames=n_frames,
                          audio_seconds=seconds, wall_seconds=time.perf_counter() - t0,
                          failures=sorted(failures.items()))
+
+
+def _prepare_folder(out: Path, pipe: FeaturePipeline, *, layout: str, pools: list[str],
+                    overwrite: bool) -> tuple[set[str], set[str]]:
+    """Clear or check what ``out`` holds; return the sources and part names already done."""
+    _check_only_ours(out)
+    if overwrite:
+        _clear(out)
+    if pools:
+        make_folder(out / CLIPS_DIR)
+    remove_stale_temporaries(out)
+    remove_stale_temporaries(out / CLIPS_DIR)
+    _drop_orphan_clip_parts(out)
+    record = _read_record(out)
+    if record and record.get("model_checksum") != pipe.checksum:
+        raise ExportError(f"{out}: holds a dataset of another model "
+                          f"({record.get('model', '?')}); pass --overwrite to replace it")
+    if record and (record.get("layout"), record.get("pool")) != (layout, pools):
+        raise ExportError(f"{out}: holds a dataset written with layout "
+                          f"{record.get('layout')!r} and pool {record.get('pool')}; "
+                          "use the same options or --overwrite")
+    done, done_parts, foreign = _finished_parts(out, pipe.checksum)
+    if foreign:
+        raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
+                          "pass --overwrite to replace them")
+    return done, done_parts
+
+
+def _run_tasks(tasks: list[dict[str, Any]], *, scheduler: str | None, workers: int,
+               n_jobs: int, n_skipped: int, progress: bool, t0: float
+               ) -> tuple[int, float, dict[str, str]]:
+    """Run the export tasks locally or on Dask; frames, audio seconds and failures."""
+    failures: dict[str, str] = {}
+    n_frames = 0
+    seconds = 0.0
+    # the local pool starts before the progress bar's thread, so it can be forked
+    with (_dask_results(tasks, scheduler) if scheduler
+          else task_results(_export_task, tasks, workers, preload=[__name__])) as results, \
+            progress_bar(progress) as bar:
+        task_id = bar.add_task("export", total=n_jobs, info="")
+        bar.advance(task_id, n_skipped)
+        for result in results:
+            for d in result["done"]:
+                n_frames += d["n_frames"]
+                seconds += d["duration_s"]
+            failures.update(result["failures"])
+            bar.advance(task_id, len(result["done"]) + len(result["failures"]))
+            elapsed = max(time.perf_counter() - t0, 1e-9)
+            bar.update(task_id, info=f"{n_frames / elapsed:.0f} frames/s, "
+                       f"{seconds / 3600 / elapsed * 3600:.2f} audio-h/h")
+    return n_frames, seconds, failures
+
+
+def _drop_parts_of_other_runs(out: Path, *, keep: set[str]) -> None:
+    """Delete parts neither done before this run nor written by it, and temporaries.
+
+    Such a part comes from a task of an earlier run that was still running when this
+    run looked at the folder (a Dask client killed and started again: the cluster
+    finishes what it had started). Every clip it holds is also in a part kept here.
+    """
+    for part in out.glob("part-*.parquet"):
+        if part.name not in keep:
+            with contextlib.suppress(OSError):
+                (out / CLIPS_DIR / part.name).unlink(missing_ok=True)
+                part.unlink()
+    remove_stale_temporaries(out)
+    remove_stale_temporaries(out / CLIPS_DIR)
+
+
+def _interrupted(out: Path, checksum: str) -> Interrupted:
+    """What a stopped run leaves: finished parts kept, temporaries removed.
+
+    The local workers have already ended (:func:`timbrel._workers.task_results`)."""
+    remove_stale_temporaries(out)
+    remove_stale_temporaries(out / CLIPS_DIR)
+    _drop_orphan_clip_parts(out)
+    done, parts, _ = _finished_parts(out, checksum)
+    return Interrupted(f"{out}: interrupted; {len(done)} files in {len(parts)} finished "
+                       "parts are kept, partial parts removed; run the same command again "
+                       "to continue")
 
 
 def _audio_root(source: Path) -> str:

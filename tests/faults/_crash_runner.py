@@ -18,7 +18,13 @@ FAULT is ``none`` or ``ACTION:WHEN:PATTERN:N``:
 - ``kill:epoch:-:N`` sends SIGKILL after the first minibatch of epoch N (0-based), i.e.
   in the middle of training between two checkpoints;
 - ``pause:after:PATTERN:N`` creates ``$FAULT_DIR/paused`` after that rename and waits
-  until ``$FAULT_DIR/go`` exists (to hold a run, and its locks, at a known point).
+  until ``$FAULT_DIR/go`` exists (to hold a run, and its locks, at a known point);
+- ``killmain``, ``intmain``, ``termmain`` (with ``before``/``after``) send SIGKILL,
+  SIGINT or SIGTERM to this runner's own process (the run's main process) from whichever
+  process reaches the point, usually a worker: the main process alone is hit, as by the
+  out-of-memory killer or ``kill PID``; ``intgroup`` sends SIGINT to the run's whole
+  process group, as Ctrl-C at a terminal does. Each worker counts its own renames
+  (from the count at the moment it was forked), so ``N`` is the first worker's N-th.
 
 Nothing in timbrel is changed: the hooks wrap ``os.replace`` and ``RBM.fit_epoch`` from
 the outside, in this child only. The kill is a real ``kill -9`` (SIGKILL cannot be caught,
@@ -33,9 +39,21 @@ import signal
 import sys
 import time
 
+MAIN = os.getpid()
+#: what each action does: a signal to the main process (or its group with ``intgroup``)
+SIGNALS = {"killmain": signal.SIGKILL, "intmain": signal.SIGINT, "termmain": signal.SIGTERM,
+           "intgroup": signal.SIGINT}
+
 
 def _die() -> None:
     os.kill(os.getpid(), signal.SIGKILL)
+
+
+def _hit_main(action: str) -> None:
+    if action == "intgroup":
+        os.killpg(os.getpgid(MAIN), signal.SIGINT)
+    else:
+        os.kill(MAIN, SIGNALS[action])
 
 
 def _install(fault: str) -> None:
@@ -69,12 +87,18 @@ def _install(fault: str) -> None:
         hit = fnmatch.fnmatch(os.path.basename(os.fsdecode(dst)), pattern)
         if hit:
             seen += 1
-        if hit and seen == target and action == "kill" and when == "before":
-            _die()
+        if hit and seen == target and when == "before":
+            if action == "kill":
+                _die()
+            elif action in SIGNALS:
+                _hit_main(action)
         real_replace(src, dst, *args, **kwargs)
         if hit and seen == target and when == "after":
             if action == "kill":
                 _die()
+            if action in SIGNALS:
+                _hit_main(action)
+                return
             folder = os.environ["FAULT_DIR"]
             open(os.path.join(folder, "paused"), "w").close()
             deadline = time.monotonic() + 300

@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
 import csv
+import json
 import os
+import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +24,10 @@ from timbrel.cli import app
 SETTINGS = ["--set", "frontend.n_mels=16", "--set", "frontend.context=1"]
 FIT_OPTIONS = ["--n-hidden", "8", "--epochs", "3", "--seed", "5"]
 RUNNER = Path(__file__).with_name("_crash_runner.py")
+#: Good clips of the crash tests' reference runs: > 16 files per frames task and > 8 per
+#: export task, so several shards and parts
+N_GOOD = 20
+EXPORT_OPTIONS = ["--pool", "mean,max"]
 SR = 16000
 
 runner = CliRunner()
@@ -93,3 +101,70 @@ def temporaries(folder: Path) -> list[Path]:
     """Files a write-then-rename left behind (``.NAME.*.part`` / ``.partial``) under ``folder``."""
     return sorted(p for p in folder.rglob(".*")
                   if p.name.endswith((".part", ".partial")))
+
+
+def live_group_members(group: int) -> list[int]:
+    """Processes of process group ``group`` still running (zombies, which hold no
+    descriptors and run nothing, are left out). Linux only: reads /proc."""
+    members = []
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat") as fh:
+                # "pid (comm) state ppid pgrp ...": comm may hold spaces or ")"
+                fields = fh.read().rsplit(")", 1)[1].split()
+        except OSError:  # the process ended while we looked
+            continue
+        if int(fields[2]) == group and fields[0] != "Z":
+            members.append(int(entry))
+    return members
+
+
+def group_end_seconds(group: int, *, within: float) -> float:
+    """Seconds until no process of ``group`` runs, looked at every 10 ms; fails after
+    ``within`` seconds (and then SIGKILLs what is left, so no test leaves processes)."""
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < within:
+        if not live_group_members(group):
+            return time.monotonic() - t0
+        time.sleep(0.01)
+    left = live_group_members(group)
+    for pid in left:
+        with contextlib.suppress(OSError):
+            os.kill(pid, signal.SIGKILL)
+    raise AssertionError(f"processes {left} of the run's group {group} still alive "
+                         f"{within} s after the run ended")
+
+
+def same_cache(path, ref) -> None:
+    """The cache at ``path`` equals the one at ``ref``, with nothing left over."""
+    clips, expected = cache_clips(path), cache_clips(ref)
+    assert list(clips) == list(expected)
+    for src in expected:
+        assert np.array_equal(clips[src], expected[src]), src
+    assert failures(path) == failures(ref)
+    ours, theirs = FrameCache.open(path).marker, FrameCache.open(ref).marker
+    assert ours["band_stats"] == theirs["band_stats"]
+    assert (ours["n_clips"], ours["n_frames"]) == (theirs["n_clips"], theirs["n_frames"])
+    # nothing left over: no temporaries, every shard on disk is one the index uses
+    assert temporaries(path) == []
+    used = set(FrameCache.open(path).index.column("shard").to_pylist())
+    on_disk = {p.stem for p in (path / "shards").iterdir()}
+    assert on_disk == used
+
+
+def same_dataset(path, ref) -> None:
+    """The dataset at ``path`` equals the one at ``ref``: every frame exactly once."""
+    rows, expected = dataset_rows(path), dataset_rows(ref)
+    assert list(rows) == list(expected)
+    for src in expected:
+        assert np.array_equal(rows[src], expected[src]), src
+    clips = ds.dataset(path / "_clips").to_table().sort_by("source")
+    assert clips.equals(ds.dataset(ref / "_clips").to_table().sort_by("source"))
+    assert failures(path) == failures(ref)
+    record = json.loads((path / "_export.json").read_text())
+    assert record["complete"] and record["n_sources"] == N_GOOD
+    assert temporaries(path) == []
+    frame_parts = {p.name for p in path.glob("part-*.parquet")}
+    assert {p.name for p in (path / "_clips").glob("part-*.parquet")} == frame_parts

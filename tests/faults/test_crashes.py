@@ -10,7 +10,6 @@ cannot be caught (POSIX), so none of timbrel's cleanup runs.
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import subprocess
@@ -18,63 +17,26 @@ import sys
 import time
 
 import numpy as np
-import pyarrow.dataset as ds
 import pytest
 from _faultkit import (
+    EXPORT_OPTIONS,
     FIT_OPTIONS,
     RUNNER,
     SETTINGS,
-    cache_clips,
-    dataset_rows,
-    failures,
     invoke,
     run_child,
+    same_cache,
+    same_dataset,
     temporaries,
-    write_good_clips,
 )
 
 from timbrel import CacheError
 from timbrel.cache import FrameCache
 from timbrel.model import read_model_file
 
-N_GOOD = 20  # > 16 files per frames task and > 8 per export task: several shards and parts
-EXPORT_OPTIONS = ["--pool", "mean,max"]
-
-
-@pytest.fixture(scope="module")
-def reference(tmp_path_factory):
-    """Uninterrupted runs over 20 good clips and one bad file."""
-    root = tmp_path_factory.mktemp("reference")
-    audio = root / "audio"
-    write_good_clips(audio, N_GOOD, seconds=0.3)
-    (audio / "zz_broken.wav").write_bytes(b"RIFF not really")
-    assert invoke("frames", audio, "--out", root / "cache", "-q", "-j", "1",
-                  *SETTINGS).exit_code == 0
-    assert invoke("fit", root / "cache", "--out", root / "model.npz", "-q",
-                  *FIT_OPTIONS).exit_code == 0
-    assert invoke("export", audio, "--model", root / "model.npz", "--out", root / "ds", "-q",
-                  "-j", "1", *EXPORT_OPTIONS).exit_code == 0
-    return root
-
 
 def _killed(proc: subprocess.CompletedProcess) -> None:
     assert proc.returncode == -signal.SIGKILL, (proc.returncode, proc.stdout, proc.stderr)
-
-
-def _same_cache(path, ref) -> None:
-    clips, expected = cache_clips(path), cache_clips(ref)
-    assert list(clips) == list(expected)
-    for src in expected:
-        assert np.array_equal(clips[src], expected[src]), src
-    assert failures(path) == failures(ref)
-    ours, theirs = FrameCache.open(path).marker, FrameCache.open(ref).marker
-    assert ours["band_stats"] == theirs["band_stats"]
-    assert (ours["n_clips"], ours["n_frames"]) == (theirs["n_clips"], theirs["n_frames"])
-    # nothing left over: no temporaries, every shard on disk is one the index uses
-    assert temporaries(path) == []
-    used = set(FrameCache.open(path).index.column("shard").to_pylist())
-    on_disk = {p.stem for p in (path / "shards").iterdir()}
-    assert on_disk == used
 
 
 FRAMES_KILLS = [
@@ -99,7 +61,7 @@ def test_frames_killed_then_run_again(fault, tmp_path, reference):
             FrameCache.open(tmp_path / "cache")  # never reads as complete
     result = invoke(*args)
     assert result.exit_code == 0, result.output
-    _same_cache(tmp_path / "cache", reference / "cache")
+    same_cache(tmp_path / "cache", reference / "cache")
 
 
 def _same_model(path, ref) -> None:
@@ -133,21 +95,6 @@ def test_fit_killed_then_run_again(fault, resume, tmp_path, reference):
     _same_model(model, reference / "model.npz")
 
 
-def _same_dataset(path, ref) -> None:
-    rows, expected = dataset_rows(path), dataset_rows(ref)
-    assert list(rows) == list(expected)
-    for src in expected:
-        assert np.array_equal(rows[src], expected[src]), src
-    clips = ds.dataset(path / "_clips").to_table().sort_by("source")
-    assert clips.equals(ds.dataset(ref / "_clips").to_table().sort_by("source"))
-    assert failures(path) == failures(ref)
-    record = json.loads((path / "_export.json").read_text())
-    assert record["complete"] and record["n_sources"] == N_GOOD
-    assert temporaries(path) == []
-    frame_parts = {p.name for p in path.glob("part-*.parquet")}
-    assert {p.name for p in (path / "_clips").glob("part-*.parquet")} == frame_parts
-
-
 EXPORT_KILLS = [
     "kill:after:_export.json:1",      # run record written, no part yet
     "kill:after:part-*.parquet:1",    # first clip-table part published, its frame part not
@@ -166,12 +113,12 @@ def test_export_killed_then_run_again(fault, tmp_path, reference):
     _killed(run_child(args, fault=fault))
     result = invoke(*args)
     assert result.exit_code == 0, result.output
-    _same_dataset(tmp_path / "ds", reference / "ds")
+    same_dataset(tmp_path / "ds", reference / "ds")
 
 
 def _kill_when(args, ready, timeout=240.0) -> None:
     """Run the command with two worker processes; SIGKILL its whole process group as soon
-    as ``ready()`` is true."""
+    as ``ready()`` is true. The caller re-runs at once: the workers hold no lock."""
     proc = subprocess.Popen([sys.executable, str(RUNNER), "none", *map(str, args)],
                             start_new_session=True, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
@@ -184,39 +131,6 @@ def _kill_when(args, ready, timeout=240.0) -> None:
     finally:
         os.killpg(proc.pid, signal.SIGKILL)
         proc.wait()
-        _wait_for_group_end(proc.pid, deadline)
-
-
-def _wait_for_group_end(group: int, deadline: float) -> None:
-    """Wait until no live process of ``group`` is left.
-
-    The killed run's worker processes share its folder lock (they are forked with its
-    descriptor), so the lock is free only once the last of them has died, a moment
-    after the parent; a re-run started before then is rightly refused as concurrent.
-    Zombies hold no descriptors and are not waited for (Linux /proc; elsewhere a pause).
-    """
-    proc_root = "/proc"
-    if not os.path.isdir(proc_root):
-        time.sleep(1.0)
-        return
-    while time.monotonic() < deadline:
-        alive = False
-        for entry in os.listdir(proc_root):
-            if not entry.isdigit():
-                continue
-            try:
-                with open(f"{proc_root}/{entry}/stat") as fh:
-                    # "pid (comm) state ppid pgrp ...": comm may hold spaces or ")"
-                    fields = fh.read().rsplit(")", 1)[1].split()
-            except OSError:  # the process ended while we looked
-                continue
-            if int(fields[2]) == group and fields[0] != "Z":
-                alive = True
-                break
-        if not alive:
-            return
-        time.sleep(0.01)
-    raise AssertionError(f"processes of the killed group {group} still alive")
 
 
 def test_frames_with_workers_killed_from_outside(tmp_path, reference):
@@ -225,7 +139,7 @@ def test_frames_with_workers_killed_from_outside(tmp_path, reference):
     _kill_when(args, lambda: any((out / "shards").glob("*.json")))
     result = invoke(*args)
     assert result.exit_code == 0, result.output
-    _same_cache(out, reference / "cache")
+    same_cache(out, reference / "cache")
 
 
 def test_export_with_workers_killed_from_outside(tmp_path, reference):
@@ -235,7 +149,7 @@ def test_export_with_workers_killed_from_outside(tmp_path, reference):
     _kill_when(args, lambda: any(out.glob("part-*.parquet")))
     result = invoke(*args)
     assert result.exit_code == 0, result.output
-    _same_dataset(out, reference / "ds")
+    same_dataset(out, reference / "ds")
 
 
 def test_kill_points_counted():

@@ -3,6 +3,7 @@ output folder holding another model's dataset or the user's own files."""
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import subprocess
@@ -15,6 +16,7 @@ from _faultkit import (
     FIT_OPTIONS,
     RUNNER,
     SETTINGS,
+    cache_clips,
     dataset_rows,
     failures,
     invoke,
@@ -75,31 +77,70 @@ def test_manifest_paths_outside_the_root_are_refused(entry, tmp_path, setup):
         assert "not readable as audio" in failures(tmp_path / "cache")["/etc/passwd"]
 
 
-def test_second_export_into_the_same_folder_is_refused_by_the_lock(tmp_path, setup):
-    out = tmp_path / "ds"
+@contextlib.contextmanager
+def _paused(args, fault: str, tmp_path):
+    """Run the command in a child that holds still (lock held) at ``fault``; let it go and
+    wait for it when the block ends. Yields the child."""
     env = {**os.environ, "FAULT_DIR": str(tmp_path)}
-    args = ["export", setup / "audio", "--model", setup / "a.npz", "--out", out, "-q", "-j",
-            "1"]
-    # the first export holds still right after publishing its first part, lock held
-    first = subprocess.Popen([sys.executable, str(RUNNER), "pause:after:part-*.parquet:1",
-                              *map(str, args)], env=env, stdout=subprocess.PIPE,
-                             stderr=subprocess.PIPE, text=True)
+    first = subprocess.Popen([sys.executable, str(RUNNER), fault, *map(str, args)], env=env,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         deadline = time.monotonic() + 240
         while not (tmp_path / "paused").exists():
             assert first.poll() is None, first.communicate()
             assert time.monotonic() < deadline
             time.sleep(0.02)
+        yield first
+    finally:
+        (tmp_path / "go").touch()
+        _, stderr = first.communicate(timeout=240)
+    assert first.returncode == 0, stderr
+
+
+def test_second_export_into_the_same_folder_is_refused_by_the_lock(tmp_path, setup):
+    out = tmp_path / "ds"
+    args = ["export", setup / "audio", "--model", setup / "a.npz", "--out", out, "-q", "-j",
+            "1"]
+    # the first export holds still right after publishing its first part, lock held
+    with _paused(args, "pause:after:part-*.parquet:1", tmp_path):
         parts_before = sorted(p.name for p in out.glob("part-*.parquet"))
         assert len(parts_before) == 1
         for extra in ([], ["--overwrite"]):  # not even --overwrite gets past the lock
             _one_error(invoke(*args, *extra), "another export is writing into this folder")
             assert sorted(p.name for p in out.glob("part-*.parquet")) == parts_before
-    finally:
-        (tmp_path / "go").touch()
-        _, stderr = first.communicate(timeout=240)
-    assert first.returncode == 0, stderr
     _same_rows(out, setup / "ds-a")  # not interleaved: exactly the uninterrupted dataset
+
+
+def test_second_frames_run_into_the_same_cache_is_refused_by_the_lock(tmp_path, setup):
+    out = tmp_path / "cache"
+    args = ["frames", setup / "audio", "--out", out, "-q", "-j", "1", *SETTINGS]
+    # the first run holds still right after publishing its first shard, lock held
+    with _paused(args, "pause:after:*.json:1", tmp_path):
+        shards_before = sorted(p.name for p in (out / "shards").iterdir())
+        _one_error(invoke(*args), "another `frames` run is writing into this cache")
+        assert sorted(p.name for p in (out / "shards").iterdir()) == shards_before
+    ours, theirs = cache_clips(out), cache_clips(setup / "cache")
+    assert list(ours) == list(theirs)
+    assert all(np.array_equal(ours[s], theirs[s]) for s in theirs)
+
+
+@pytest.mark.parametrize("kind", ["folder", "manifest"])
+@pytest.mark.parametrize("command", ["frames", "export"])
+def test_a_source_without_clips_is_one_error(command, kind, tmp_path, setup):
+    # it used to say "0 of 0 files cached" and exit 0
+    empty = tmp_path / "empty"
+    (empty / "sub").mkdir(parents=True)
+    (empty / "notes.txt").write_text("no audio here")
+    if kind == "manifest":
+        empty = empty / "list.csv"
+        empty.write_text("path,label\n")
+    args = (["frames", empty, "--out", tmp_path / "out", "-q", *SETTINGS] if command == "frames"
+            else ["export", empty, "--model", setup / "a.npz", "--out", tmp_path / "out", "-q"])
+    _one_error(invoke(*args), str(empty))
+    if kind == "folder":
+        _one_error(invoke(*args), "searched for .wav, .flac, .ogg")
+    else:
+        _one_error(invoke(*args), "the manifest lists no files")
 
 
 def test_folder_with_another_models_dataset_is_refused_unless_overwrite(tmp_path, setup):
