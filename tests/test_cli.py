@@ -147,8 +147,8 @@ def test_fit_inspect_export_probe_chain(tmp_path):
     assert result.exit_code == 0, result.output
     assert "8 of 8 files exported" in result.output
     result = runner.invoke(app, ["export", str(cache), "--model", str(model), "--out", str(ds),
-                                 "-q", "-j", "1", "--layout", "wide"])
-    assert result.exit_code == 1 and "layout" in result.output
+                                 "-q", "-j", "1", "--columns", "wide"])
+    assert result.exit_code == 1 and "columns" in result.output
     result = runner.invoke(app, ["probe", str(ds), "--baseline", "mfcc"])
     assert result.exit_code == 0, result.output
     assert "rbm-relu" in result.output and "mfcc" in result.output

@@ -111,9 +111,9 @@ def test_cache_source_gives_identical_features(tmp_path, setup):
     assert a.column("label").to_pylist() == b.column("label").to_pylist()
 
 
-def test_wide_layout_and_clip_table(tmp_path, setup):
+def test_wide_columns_and_clip_table(tmp_path, setup):
     out = tmp_path / "wide"
-    export(setup["cache"], setup["model"], out, workers=1, layout="wide",
+    export(setup["cache"], setup["model"], out, workers=1, columns="wide",
            pool=["mean", "max", "std"])
     table = _sorted_table(out)
     names = [f"h{j:04d}" for j in range(N_HIDDEN)]
@@ -153,10 +153,10 @@ def test_every_codec_gives_the_same_rows(tmp_path, setup, compression, parquet_c
     assert item.type == "float" and not item.nullable
 
 
-@pytest.mark.parametrize("layout", ["vector", "wide"])
-def test_statistics_kept_where_a_reader_can_filter(tmp_path, setup, layout):
-    out = tmp_path / layout
-    export(setup["cache"], setup["model"], out, workers=1, layout=layout, pool=["max"])
+@pytest.mark.parametrize("columns", ["vector", "wide"])
+def test_statistics_kept_where_a_reader_can_filter(tmp_path, setup, columns):
+    out = tmp_path / columns
+    export(setup["cache"], setup["model"], out, workers=1, columns=columns, pool=["max"])
     for part in sorted(out.glob("part-*.parquet")) + sorted((out / "_clips").glob("*.parquet")):
         meta = pq.ParquetFile(part).metadata.row_group(0)
         stats = {meta.column(c).path_in_schema: meta.column(c).is_stats_set

@@ -140,11 +140,19 @@ class Units(str, Enum):
     stepped = "stepped"
 
 
-class Layout(str, Enum):
-    """Dataset layouts."""
+class Columns(str, Enum):
+    """How a dataset holds the features: one list column, or one column per unit."""
 
     vector = "vector"
     wide = "wide"
+
+
+class Layer(str, Enum):
+    """Which layer of a stacked model."""
+
+    top = "top"
+    first = "first"
+    all = "all"
 
 
 class Compression(str, Enum):
@@ -215,9 +223,16 @@ def export_command(
     scheduler: Annotated[str | None, typer.Option(
         "--scheduler", help="Dask scheduler address, tcp://HOST:PORT (needs the dask extra).")
     ] = None,
-    layout: Annotated[Layout, typer.Option(
-        "--layout", help="vector: one features list column; wide: one column per unit.")
-    ] = Layout.vector,
+    columns: Annotated[Columns, typer.Option(
+        "--columns", help="vector: one features list column; wide: one column per unit.")
+    ] = Columns.vector,
+    layer: Annotated[Layer, typer.Option(
+        "--layer", help="A stacked model's layer: top, first, or all side by side.")
+    ] = Layer.top,
+    events: Annotated[Path | None, typer.Option(
+        "--events", exists=True, dir_okay=False,
+        help="Annotation table (file onset offset label): adds each frame's event labels.")
+    ] = None,
     pool: Annotated[str, typer.Option(
         "--pool", help="Also write a clip table with these poolings, e.g. mean,max,std.")] = "",
     compression: Annotated[Compression, typer.Option(
@@ -238,11 +253,13 @@ def export_command(
     cfg = load_config(config) if config else None
     pools = [p.strip() for p in pool.split(",") if p.strip()]
     summary = export(source, model, out, workers=workers, scheduler=scheduler,
-                     layout=layout.value, pool=pools, compression=compression.value,
-                     overwrite=overwrite, config=cfg,
+                     columns=columns.value, pool=pools, compression=compression.value,
+                     layer=layer.value, events=events, overwrite=overwrite, config=cfg,
                      allow_outside=allow_outside, progress=not quiet)
     for src, reason in summary.failures:
         _err(f"failed: {src}: {reason}")
+    for problem in summary.event_problems:
+        _err(f"events: {problem}")
     typer.echo(summary.line())
     typer.echo(f"dataset: {summary.path}")
     if strict and summary.failures:
@@ -259,8 +276,9 @@ def probe_command(
         "--split-column", help="Column with train/test per clip; if absent, k-fold over clips.")
     ] = "split",
     baseline: Annotated[str, typer.Option(
-        "--baseline", help="Hand-made baselines to compare: mfcc,logmel (empty for none).")
-    ] = "mfcc,logmel",
+        "--baseline", help="Peers to compare: mfcc,logmel,kmeans (empty for none; with "
+        "--events: mfcc,logmel).")
+    ] = "mfcc,logmel,kmeans",
     # evaluation.PROBE_POOLS, spelled out so that --help need not import the stage
     pool: Annotated[str, typer.Option(
         "--pool", help="Pooling of frame features per clip: max, mean, std, comma-separated.")
@@ -275,14 +293,15 @@ def probe_command(
         "--events", help="Probe frames instead of clips: detect the exported events (export "
         "--events) and score them in 1 s segments.")] = False,
 ) -> None:
-    """Do the features beat hand-made ones? A probe classifier beside MFCC and log-mel."""
+    """Do the features beat simple ones? A probe classifier beside MFCC, log-mel and k-means."""
     import json
 
     if events:
         from .detection import probe_events
 
-        found = probe_events(dataset, split_column=split_column or "split",
-                             baselines=[b.strip() for b in baseline.split(",") if b.strip()],
+        # the k-means peer codes clips, not frames: a frame probe compares MFCC and log-mel
+        peers = [b.strip() for b in baseline.split(",") if b.strip() and b.strip() != "kmeans"]
+        found = probe_events(dataset, split_column=split_column or "split", baselines=peers,
                              audio_root=audio_root)
         typer.echo(json.dumps(found.to_dict(), indent=1) if as_json else found.table())
         return

@@ -6,7 +6,7 @@ one table, one row per frame::
     DATASET/part-<id>.parquet    frames of a group of clips (schema: :func:`frame_schema`)
     DATASET/_clips/part-<id>.parquet
                                  with ``pool``: one row per clip, pooled features
-    DATASET/_export.json         the run record: model checksum, layout, finished sources
+    DATASET/_export.json         the run record: model checksum, options, finished sources
     DATASET/_failures.csv        files that could not be used, with the reason
 
 Names starting with ``_`` or ``.`` are skipped by dataset readers. Each part is written
@@ -54,13 +54,14 @@ from .audio import AudioItem, counted_blocks, discover, display_name, read_block
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
 from .config import Config
-from .frontend import ContextStacker, FrontEnd
+from .events import Event, EventProblem, check_events, frame_labels, read_events
+from .frontend import FrontEnd
 from .pipeline import FeaturePipeline, load_pipeline
+from .pooling import ClipPool, check_pools
 
-__all__ = ["LAYOUTS", "POOLS", "ExportSummary", "clip_schema", "export", "frame_schema"]
+__all__ = ["COLUMNS", "ExportSummary", "clip_schema", "export", "frame_schema"]
 
-LAYOUTS = ("vector", "wide")
-POOLS = ("mean", "max", "std")
+COLUMNS = ("vector", "wide")
 RECORD = "_export.json"
 FAILURES = "_failures.csv"
 CLIPS_DIR = "_clips"
@@ -87,6 +88,9 @@ CODEC_LEVELS: dict[str, int | None] = {"zstd": 1, "lz4": None, "none": None}
 COMPRESSION = "zstd"
 
 
+_EVENTS_TYPE = pa.list_(pa.field("item", pa.string(), nullable=False))
+
+
 def _vector_type(n_hidden: int) -> pa.DataType:
     # the items are never null: declaring so spares the Parquet writer a definition level
     # per value (one 60 s file at 1024 units, uncompressed: 74 -> 60 ms in one run)
@@ -99,24 +103,29 @@ def _column_names(n_hidden: int) -> list[str]:
 
 
 def frame_schema(n_hidden: int, extra_columns: Sequence[str] = (), *,
-                 layout: str = "vector", metadata: dict[bytes, bytes] | None = None) -> pa.Schema:
+                 columns: str = "vector", events: bool = False,
+                 metadata: dict[bytes, bytes] | None = None) -> pa.Schema:
     """The Arrow schema of the per-frame table.
 
     Columns: ``source`` (string), ``frame`` (int32), ``start_s`` (float64), then
     ``features`` (fixed-size list of non-null float32, ``n_hidden`` long) for
-    ``layout="vector"`` or one float32 column per hidden unit (``h0000``, ``h0001``, ...)
-    for ``"wide"``, then the manifest columns as strings.
+    ``columns="vector"`` or one float32 column per hidden unit (``h0000``, ``h0001``, ...)
+    for ``"wide"``, then with ``events`` an ``events`` column (list of strings: the
+    labels of the annotated events covering the frame's centre, empty for background),
+    then the manifest columns as strings.
     """
     fields = [pa.field("source", pa.string(), nullable=False),
               pa.field("frame", pa.int32(), nullable=False),
               pa.field("start_s", pa.float64(), nullable=False)]
-    if layout == "vector":
+    if columns == "vector":
         fields.append(pa.field("features", _vector_type(n_hidden), nullable=False))
-    elif layout == "wide":
+    elif columns == "wide":
         fields.extend(pa.field(name, pa.float32(), nullable=False)
                       for name in _column_names(n_hidden))
     else:
-        raise ParameterError(f"layout = {layout!r} is not one of {LAYOUTS}")
+        raise ParameterError(f"columns = {columns!r} is not one of {COLUMNS}")
+    if events:
+        fields.append(pa.field("events", _EVENTS_TYPE, nullable=False))
     fields.extend(pa.field(name, pa.string()) for name in extra_columns)
     return pa.schema(fields, metadata=metadata)
 
@@ -145,6 +154,8 @@ class ExportSummary:
     audio_seconds: float
     wall_seconds: float
     failures: list[tuple[str, str]]
+    #: annotation lines that could not be used as written, one line of text each
+    event_problems: list[str] = dataclasses.field(default_factory=list)
 
     def line(self) -> str:
         """One-line summary for a person."""
@@ -176,19 +187,6 @@ def _pipeline(model_path: str, checksum: str) -> FeaturePipeline:
     return _PIPELINES[key]
 
 
-def _clip_features(pipe: FeaturePipeline, frames_blocks: Iterator[np.ndarray]
-                   ) -> Iterator[np.ndarray]:
-    """Hidden activations of a clip given as blocks of log-mel frames."""
-    stacker = ContextStacker(pipe.config.frontend.context)
-    for frames in frames_blocks:
-        rows = stacker.push(pipe.standardise(frames))
-        if len(rows):
-            yield pipe.rbm.transform(rows)
-    rest = stacker.finish()
-    if len(rest):
-        yield pipe.rbm.transform(rest)
-
-
 def _export_task(task: dict[str, Any]) -> dict[str, Any]:
     """Worker: features of a group of clips into one part file (and its clip-table part)."""
     with single_blas_thread():
@@ -197,14 +195,14 @@ def _export_task(task: dict[str, Any]) -> dict[str, Any]:
 
 def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     pipe = _pipeline(task["model"], task["checksum"])
-    fe_cfg = pipe.config.frontend
-    frontend = FrontEnd(fe_cfg)
-    n_hidden = pipe.rbm.n_hidden
-    layout, pools, extra_columns = task["layout"], task["pools"], task["extra_columns"]
+    frontend = FrontEnd(pipe.config.frontend)
+    n_hidden = pipe.n_features(task["layer"])
+    columns, pools, extra_columns = task["columns"], task["pools"], task["extra_columns"]
     metadata = {METADATA_KEY: json.dumps({**task["metadata"],
                                           "sources": [j["source"] for j in task["jobs"]]}
                                          ).encode()}
-    schema = frame_schema(n_hidden, extra_columns, layout=layout, metadata=metadata)
+    schema = frame_schema(n_hidden, extra_columns, columns=columns,
+                          events=task["events"], metadata=metadata)
     rows_per_group = max(1024, ROW_GROUP_BYTES // (4 * n_hidden + 64))
     group = np.empty((rows_per_group, n_hidden), np.float32)
     out = Path(task["out"])
@@ -220,7 +218,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
-                                         group, layout, pools, extra_columns, part)
+                                         group, task, part)
                 except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
@@ -263,10 +261,9 @@ def _check_run(out: Path, run: str | None) -> None:
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
-                 group: np.ndarray, layout: str, pools: Sequence[str],
-                 extra_columns: Sequence[str], part: Path) -> dict[str, Any]:
+                 group: np.ndarray, task: dict[str, Any], part: Path) -> dict[str, Any]:
     """Features of one clip into ``writer``, in row groups of ``len(group)`` rows filled
-    in ``group`` (n_rows, n_hidden), so memory stays flat whatever the clip's length."""
+    in ``group`` (n_rows, n_features), so memory stays flat whatever the clip's length."""
     fe_cfg = frontend.config
     n_samples = [0]  # decoded samples, for the reason a clip too short gives
     if cache is not None:
@@ -280,12 +277,10 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         duration = read_info(path).duration
         audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
         blocks = frontend.stream(counted_blocks(audio, n_samples), fe_cfg.sample_rate)
-    n_hidden = pipe.rbm.n_hidden
+    pools = task["pools"]
     # clip pooling statistics, gathered only when a clip table is asked for: these
     # float64 passes over every activation cost about a tenth of the model's time
-    total = np.zeros(n_hidden, np.float64) if pools else None
-    total_sq = np.zeros(n_hidden, np.float64) if pools else None
-    peak = np.full(n_hidden, -np.inf, np.float32) if pools else None
+    pool = ClipPool(group.shape[1]) if pools else None
     start = 0
     filled = 0
 
@@ -294,8 +289,7 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
         # writer has encoded it when write_table returns, so the buffer may be refilled
         nonlocal filled, start
         if filled:
-            table = _frame_table(job, group[:filled], start, fe_cfg, schema, layout,
-                                 extra_columns)
+            table = _frame_table(job, group[:filled], start, frontend, schema, task)
             try:
                 writer.write_table(table, row_group_size=len(group))
             except OSError as exc:  # the output's fault, never the clip's: it stops the run
@@ -303,11 +297,9 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
             start += filled
             filled = 0
 
-    for feats in _clip_features(pipe, blocks):
-        if total is not None and total_sq is not None and peak is not None:
-            total += feats.sum(axis=0, dtype=np.float64)
-            total_sq += np.square(feats, dtype=np.float64).sum(axis=0)
-            np.maximum(peak, feats.max(axis=0), out=peak)
+    for feats in pipe.stream_features(blocks, task["layer"]):
+        if pool is not None:
+            pool.add(feats)
         used = 0
         while used < len(feats):
             take = min(len(group) - filled, len(feats) - used)
@@ -320,10 +312,8 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
     if start == 0:
         raise AudioReadError(job["source"], frontend.too_short_reason(n_samples[0]))
     stats: dict[str, Any] = {"n_frames": start, "duration_s": duration}
-    if total is not None and total_sq is not None:
-        mean = total / start
-        std = np.sqrt(np.maximum(total_sq / start - np.square(mean), 0.0))
-        stats.update(mean=mean.astype(np.float32), max=peak, std=std.astype(np.float32))
+    if pool is not None:
+        stats.update({p: v.astype(np.float32) for p, v in pool.result(pools).items()})
     return stats
 
 
@@ -355,23 +345,28 @@ def _repeated_string(value: str, n: int) -> pa.Array:
                                  [None, pa.py_buffer(offsets), pa.py_buffer(encoded * n)])
 
 
-def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, fe_cfg: Any,
-                 schema: pa.Schema, layout: str, extra_columns: Sequence[str]) -> pa.Table:
+def _frame_table(job: dict[str, Any], feats: np.ndarray, start: int, frontend: FrontEnd,
+                 schema: pa.Schema, task: dict[str, Any]) -> pa.Table:
     n, n_hidden = feats.shape
     frame = np.arange(start, start + n, dtype=np.int32)
     columns: list[pa.Array] = [
         _repeated_string(job["source"], n),
         _numeric_array(frame),
-        _numeric_array(frame.astype(np.float64) * fe_cfg.hop_length / fe_cfg.sample_rate),
+        _numeric_array(frontend.frame_times(n, first=start)),
     ]
     feats = np.ascontiguousarray(feats, np.float32)
-    if layout == "vector":
+    if task["columns"] == "vector":
         columns.append(pa.FixedSizeListArray.from_arrays(_numeric_array(feats.reshape(-1)),
                                                          type=_vector_type(n_hidden)))
     else:
         by_unit = np.ascontiguousarray(feats.T)  # one pass, then each column is contiguous
         columns.extend(_numeric_array(by_unit[j]) for j in range(n_hidden))
-    columns.extend(_repeated_string(job["extra"].get(c, ""), n) for c in extra_columns)
+    if task["events"]:
+        events = [Event(job["source"], *e) for e in job.get("events", [])]
+        columns.append(pa.array(frame_labels(events, frontend.frame_centres(n, first=start)),
+                                type=_EVENTS_TYPE))
+    columns.extend(_repeated_string(job["extra"].get(c, ""), n)
+                   for c in task["extra_columns"])
     return pa.Table.from_arrays(columns, schema=schema)
 
 
@@ -379,7 +374,7 @@ def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[st
     """Codec settings for a part file of ``schema`` (see :data:`CODEC_LEVELS`).
 
     Min/max statistics are kept for every column a reader can filter on (source, frame,
-    start_s, the extra columns, each unit of the wide layout) and left out for the list
+    start_s, the extra columns, each unit of the wide columns) and left out for the list
     columns of feature vectors: a page's extremes over all units at once prune nothing,
     and leaving them out made the write of a 60 s file at 1024 units 7 % faster (zstd 1,
     medians over 11 and 21 alternate rounds, bench/bench_export.py's settings).
@@ -441,9 +436,11 @@ def export(
     *,
     workers: int | None = None,
     scheduler: str | None = None,
-    layout: str = "vector",
+    columns: str = "vector",
     pool: Sequence[str] = (),
     compression: str = COMPRESSION,
+    layer: str = "top",
+    events: str | Path | None = None,
     overwrite: bool = False,
     config: Config | None = None,
     allow_outside: bool = False,
@@ -466,7 +463,7 @@ def export(
     scheduler : str, optional
         Address of a dask.distributed scheduler (``tcp://HOST:PORT``); the same tasks run
         there. Needs the ``dask`` extra. The result is identical to the local backend.
-    layout : {"vector", "wide"}, default "vector"
+    columns : {"vector", "wide"}, default "vector"
         One ``features`` list column, or one float32 column per hidden unit.
     pool : sequence of {"mean", "max", "std"}, default ()
         Also write a clip table (``out/_clips/``) with these poolings over each clip.
@@ -474,6 +471,15 @@ def export(
         Parquet codec of the part files. Zstd (level 1) halves the size of relu
         activations; ``"none"`` writes about twice as fast and twice as large; lz4 lies
         between. Parts written with different codecs read the same.
+    layer : {"top", "first", "all"}, default "top"
+        Which layer's features a stacked model (``timbrel fit --on``) exports.
+    events : str or Path, optional
+        An annotation table (``file onset offset label``, tab- or comma-separated, with
+        or without a header; see :func:`timbrel.events.read_events`): adds an ``events``
+        column with the labels of the events covering each frame's centre. Lines that
+        cannot be used (onset at or after offset, negative times, clips the source lacks,
+        events past a clip's end) are reported by line number in the summary's
+        ``event_problems``; an event past the end still labels the frames it covers.
     overwrite : bool, default False
         Delete what ``out`` holds and start over. Without it, a dataset of the same model
         is resumed (finished clips are skipped) and one of another model is refused.
@@ -497,8 +503,11 @@ def export(
         stopped, temporaries removed, finished parts kept for a re-run to resume from.
     """
     t0 = time.perf_counter()
-    pools = _checked_options(layout, compression, pool)
     pipe = load_pipeline(model)
+    options = {"columns": columns, "pools": _checked_options(columns, compression, pool),
+               "compression": compression, "layer": layer,
+               "n_features": pipe.n_features(layer), "events": events is not None}
+    annotations = (Path(events), *read_events(events)) if events is not None else None
     _check_config(config, pipe, model)
     out = Path(out)
     if out.exists() and not out.is_dir():
@@ -509,54 +518,51 @@ def export(
     with folder_lock(out, error=ExportError, busy="another export is writing into this "
                      "folder (lock held); wait for it or choose another --out"):
         try:
-            return _export_locked(source, model, out, pipe, workers=workers,
-                                  scheduler=scheduler, layout=layout, pools=pools,
-                                  compression=compression, overwrite=overwrite,
+            return _export_locked(source, model, out, pipe, options, annotations,
+                                  workers=workers, scheduler=scheduler, overwrite=overwrite,
                                   allow_outside=allow_outside, progress=progress, t0=t0)
         except KeyboardInterrupt:
             raise _interrupted(out, pipe.checksum) from None
 
 
-def _checked_options(layout: str, compression: str, pool: Sequence[str]) -> list[str]:
-    """The poolings asked for, without repeats; refuse an unknown layout, codec or pooling."""
-    if layout not in LAYOUTS:
-        raise ParameterError(f"layout = {layout!r} is not one of {', '.join(LAYOUTS)}")
+def _checked_options(columns: str, compression: str, pool: Sequence[str]) -> list[str]:
+    """The poolings asked for, without repeats; refuse unknown columns, codec or pooling."""
+    if columns not in COLUMNS:
+        raise ParameterError(f"columns = {columns!r} is not one of {', '.join(COLUMNS)}")
     if compression not in CODEC_LEVELS:
         raise ParameterError(f"compression = {compression!r} is not one of "
                              f"{', '.join(CODEC_LEVELS)}")
-    pools = list(dict.fromkeys(pool))
-    bad = [p for p in pools if p not in POOLS]
-    if bad:
-        raise ParameterError(f"pool {bad} not among {', '.join(POOLS)}")
-    return pools
+    return check_pools(pool) if pool else []
 
 
 def _check_config(config: Config | None, pipe: FeaturePipeline, model: str | Path) -> None:
     """Refuse a config whose front end differs from the model's."""
     fe = pipe.config.frontend
     if config is not None and config.frontend != fe:
-        diffs = [f"{f.name}: config {getattr(config.frontend, f.name)!r}, model "
-                 f"{getattr(fe, f.name)!r}" for f in dataclasses.fields(fe)
-                 if getattr(config.frontend, f.name) != getattr(fe, f.name)]
+        diffs = config.frontend.frame_differences(fe, ours="config", theirs="model")
+        if config.frontend.context != fe.context:
+            diffs.append(f"context: config {config.frontend.context}, model {fe.context}")
         raise ExportError(f"{model}: the configuration disagrees with the model's front end "
                           f"({'; '.join(diffs)}); export always frames audio as the model "
                           "was trained")
 
 
 def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: FeaturePipeline,
-                   *, workers: int | None, scheduler: str | None, layout: str,
-                   pools: list[str], compression: str, overwrite: bool, allow_outside: bool,
-                   progress: bool, t0: float) -> ExportSummary:
+                   options: dict[str, Any],
+                   annotations: tuple[Path, list[Event], list[EventProblem]] | None, *,
+                   workers: int | None, scheduler: str | None, overwrite: bool,
+                   allow_outside: bool, progress: bool, t0: float) -> ExportSummary:
     """The body of :func:`export`, run while holding the dataset folder's lock."""
-    done, done_parts = _prepare_folder(out, pipe, layout=layout, pools=pools,
-                                       overwrite=overwrite)
+    done, done_parts = _prepare_folder(out, pipe, options, overwrite=overwrite)
     jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
                                                         allow_outside=allow_outside)
+    problems = _attach_events(jobs, annotations) if annotations is not None else []
     metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
-                "hidden": pipe.rbm.hidden, "n_hidden": int(pipe.rbm.n_hidden),
-                "frontend": dataclasses.asdict(pipe.config.frontend),
-                "config": pipe.config.to_dict(), "timbrel": __version__, "layout": layout,
-                "pool": pools, "audio_root": audio_root,
+                "hidden": pipe.top.hidden, "n_hidden": options["n_features"],
+                "layer": options["layer"], "frontend": dataclasses.asdict(pipe.config.frontend),
+                "config": pipe.config.to_dict(), "timbrel": __version__,
+                "columns": options["columns"], "pool": options["pools"],
+                "events": options["events"], "audio_root": audio_root,
                 "exported": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
     # a new run token: tasks of an earlier run still running on a Dask cluster (its
     # client was killed) see it and discard their parts instead of publishing them
@@ -565,10 +571,10 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     _write_record(out, record)
     todo = [j for j in jobs if j["source"] not in done]
     n_workers = max(1, workers or os.cpu_count() or 1)
-    tasks = [{"id": _task_id(pipe.checksum, chunk), "jobs": chunk, "model": str(model),
-              "checksum": pipe.checksum, "out": str(out), "layout": layout, "pools": pools,
+    tasks = [{**options, "id": _task_id(pipe.checksum, chunk), "jobs": chunk,
+              "model": str(model), "checksum": pipe.checksum, "out": str(out),
               "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path,
-              "compression": compression, "run": run}
+              "run": run}
              for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
     # forked workers inherit the loaded model instead of reading it again
     _PIPELINES[_pipeline_key(str(model), pipe.checksum)] = pipe
@@ -583,16 +589,28 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     return ExportSummary(path=out, n_files=len(jobs), n_clips=len(todo) - len(failures),
                          n_skipped=len(jobs) - len(todo), n_frames=n_frames,
                          audio_seconds=seconds, wall_seconds=time.perf_counter() - t0,
-                         failures=sorted(failures.items()))
+                         failures=sorted(failures.items()), event_problems=problems)
 
 
-def _prepare_folder(out: Path, pipe: FeaturePipeline, *, layout: str, pools: list[str],
+def _attach_events(jobs: list[dict[str, Any]],
+                   annotations: tuple[Path, list[Event], list[EventProblem]]) -> list[str]:
+    """Give each job its clip's events; the annotation lines that cannot be used, as text."""
+    table, events, problems = annotations
+    durations = {j["source"]: float(j["duration_s"]) if "duration_s" in j
+                 else read_info(j["path"]).duration for j in jobs}
+    by_clip, more = check_events(events, durations)
+    for job in jobs:
+        job["events"] = [(e.onset, e.offset, e.label) for e in by_clip.get(job["source"], [])]
+    return [p.text(table) for p in sorted([*problems, *more], key=lambda p: p.line)]
+
+
+def _prepare_folder(out: Path, pipe: FeaturePipeline, options: dict[str, Any], *,
                     overwrite: bool) -> tuple[set[str], set[str]]:
     """Clear or check what ``out`` holds; return the sources and part names already done."""
     _check_only_ours(out)
     if overwrite:
         _clear(out)
-    if pools:
+    if options["pools"]:
         make_folder(out / CLIPS_DIR)
     remove_stale_temporaries(out)
     remove_stale_temporaries(out / CLIPS_DIR)
@@ -601,10 +619,17 @@ def _prepare_folder(out: Path, pipe: FeaturePipeline, *, layout: str, pools: lis
     if record and record.get("model_checksum") != pipe.checksum:
         raise ExportError(f"{out}: holds a dataset of another model "
                           f"({record.get('model', '?')}); pass --overwrite to replace it")
-    if record and (record.get("layout"), record.get("pool")) != (layout, pools):
-        raise ExportError(f"{out}: holds a dataset written with layout "
-                          f"{record.get('layout')!r} and pool {record.get('pool')}; "
-                          "use the same options or --overwrite")
+    if record:
+        # records written before the options were named so say "layout" for the columns
+        theirs = {"columns": record.get("columns", record.get("layout")),
+                  "pool": record.get("pool"), "layer": record.get("layer", "top"),
+                  "events": bool(record.get("events", False))}
+        ours = {"columns": options["columns"], "pool": options["pools"],
+                "layer": options["layer"], "events": options["events"]}
+        if theirs != ours:
+            differ = ", ".join(f"{k} {theirs[k]!r}" for k in ours if theirs[k] != ours[k])
+            raise ExportError(f"{out}: holds a dataset written with {differ}; use the same "
+                              "options or --overwrite")
     done, done_parts, foreign = _finished_parts(out, pipe.checksum)
     if foreign:
         raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
@@ -676,9 +701,12 @@ def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
     src = Path(source)
     if src.is_dir() and (src / CACHE_MARKER).is_file():
         cache = FrameCache.open(src)
-        if cache.config.frontend.frame_key() != pipe.config.frontend.frame_key():
+        diffs = pipe.config.frontend.frame_differences(cache.config.frontend, ours="model",
+                                                       theirs="cache")
+        if diffs:
             raise ExportError(f"{src}: the cache's frames were made with other front-end "
-                              "settings than the model's; export from the audio instead")
+                              f"settings than the model's ({'; '.join(diffs)}); export from "
+                              "the audio instead")
         extra = cache.extra_columns
         table = cache.index.to_pylist()
         jobs = [{"source": row["source"], "clip": i, "duration_s": row["duration_s"],

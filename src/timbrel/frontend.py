@@ -238,10 +238,15 @@ class FrontEnd:
         return (f"shorter than one analysis window ({n_samples} samples at {c.sample_rate} Hz "
                 f"< n_fft {c.fft_length})")
 
-    def frame_times(self, n_frames: int) -> np.ndarray:
-        """Start time in seconds of each frame, shape (n_frames,), float64."""
+    def frame_times(self, n_frames: int, *, first: int = 0) -> np.ndarray:
+        """Start time in seconds of frames ``first`` to ``first + n_frames - 1``, float64."""
         hop, sr = self.config.hop_length, self.config.sample_rate
-        return np.arange(n_frames, dtype=np.float64) * hop / sr
+        return np.arange(first, first + n_frames, dtype=np.float64) * hop / sr
+
+    def frame_centres(self, n_frames: int, *, first: int = 0) -> np.ndarray:
+        """Centre time in seconds of each frame: its start plus half the FFT window."""
+        return self.frame_times(n_frames, first=first) + \
+            self.config.fft_length / 2 / self.config.sample_rate
 
     def frames(self, y: np.ndarray, sr: int) -> np.ndarray:
         """Log-mel frames of a whole clip, before any standardisation.
