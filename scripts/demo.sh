@@ -9,26 +9,31 @@ mkdir -p "$OUT"
 start=$(date +%s)
 step() { echo; echo "== $*"; }
 
-step "1/6 frames: demo_audio/manifest.csv -> $OUT/cache"
+step "1/7 frames: demo_audio/manifest.csv -> $OUT/cache"
 "$TIMBREL" frames demo_audio/manifest.csv --out "$OUT/cache" --config "$CONFIG"
 
-step "2/6 fit: $OUT/cache -> $OUT/model.npz"
+step "2/7 fit: $OUT/cache -> $OUT/model.npz"
 # a fixed seed, so every run prints the same figures (without one, fit draws a fresh seed)
 "$TIMBREL" fit "$OUT/cache" --out "$OUT/model.npz" --config "$CONFIG" --seed "${SEED:-0}"
 
-step "3/6 export: per-frame features -> $OUT/features (Parquet dataset)"
+step "3/7 export: per-frame features -> $OUT/features (Parquet dataset)"
 "$TIMBREL" export demo_audio/manifest.csv --model "$OUT/model.npz" --out "$OUT/features" \
   --pool mean,max,std --overwrite
 
-step "4/6 probe: learned features beside MFCC and log-mel baselines"
+step "4/7 probe: learned features beside their peers (MFCC, log-mel, k-means)"
 "$TIMBREL" probe "$OUT/features" --label label --split-column split | tee "$OUT/probe.txt"
 
-step "5/6 inspect: the model, with pictures"
+step "5/7 events: the annotated soundscapes, frame by frame"
+"$TIMBREL" export demo_audio/soundscapes/manifest.csv --model "$OUT/model.npz" \
+  --out "$OUT/soundscapes" --events demo_audio/soundscapes/events.tsv --overwrite
+"$TIMBREL" probe "$OUT/soundscapes" --events | tee "$OUT/events_probe.txt"
+
+step "6/7 inspect: the model, with pictures"
 "$TIMBREL" inspect "$OUT/model.npz" --plots "$OUT/pictures" | tee "$OUT/model.txt" | head -8
 first_clip=$(sed -n 2p demo_audio/manifest.csv | cut -d, -f1)
 "$TIMBREL" show "demo_audio/$first_clip" --model "$OUT/model.npz" --out "$OUT/pictures/clip.png"
 
-step "6/6 read the dataset back with pyarrow"
+step "7/7 read the dataset back with pyarrow"
 "$PY" -c "import pyarrow.dataset as ds; t = ds.dataset('$OUT/features').to_table(); \
 print(t.num_rows, 'frames from', len(set(t.column('source').to_pylist())), 'clips;', \
 'columns:', ', '.join(t.column_names))"
@@ -39,5 +44,6 @@ echo "  frame cache      $OUT/cache  (failures: $OUT/cache/failures.csv)"
 echo "  model            $OUT/model.npz  (history: $OUT/model.npz.history.csv)"
 echo "  features         $OUT/features/part-*.parquet  (clip table: $OUT/features/_clips/)"
 echo "  probe table      $OUT/probe.txt"
+echo "  event detection  $OUT/events_probe.txt  (frames: $OUT/soundscapes/)"
 echo "  model summary    $OUT/model.txt"
 echo "  pictures         $OUT/pictures/*.png"
