@@ -48,8 +48,8 @@ def test_cache_holds_the_front_ends_frames(tmp_path, audio_dir, workers):
     assert (summary.n_files, summary.n_clips, summary.n_failed) == (9, 6, 3)
     cache = FrameCache.open(tmp_path / "cache")
     fe = FrontEnd(cache.config.frontend)
-    assert cache.sources() == [f"clip{i:02d}.wav" for i in range(6)]
-    for clip, src in enumerate(cache.sources()):
+    assert cache.index.column("source").to_pylist() == [f"clip{i:02d}.wav" for i in range(6)]
+    for clip, src in enumerate(cache.index.column("source").to_pylist()):
         y = load(audio_dir / src, sr=16000)
         expected = fe.frames(y, 16000)
         got = cache.clip_frames(clip)
@@ -101,7 +101,7 @@ def test_rerun_reuses_unchanged_clips_and_redoes_changed_ones(tmp_path, audio_di
     (audio_dir / "clip05.wav").unlink()
     build_cache(audio_dir, out, workers=1)
     final = FrameCache.open(out)
-    assert "clip05.wav" not in final.sources()
+    assert "clip05.wav" not in final.index.column("source").to_pylist()
     shards = {p.stem for p in (out / "shards").glob("*.f32")}
     assert shards == set(final.index.column("shard").to_pylist())
     assert len(list(out.glob("index-*.parquet"))) == 1

@@ -512,10 +512,6 @@ class FrameCache:
     def __len__(self) -> int:
         return len(self._counts)
 
-    def sources(self) -> list[str]:
-        """Clip names (paths relative to the source root), in clip order."""
-        return self.index.column("source").to_pylist()
-
     def clip_frames(self, clip: int) -> np.ndarray:
         """Log-mel frames of one clip, shape (n_frames, n_mels), float32, read-only memory map."""
         if not 0 <= clip < len(self._counts):
