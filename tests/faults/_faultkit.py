@@ -71,7 +71,8 @@ def run_child(args: list[str], *, fault: str | None = None, cwd: Path | None = N
 def cache_clips(path: Path) -> dict[str, np.ndarray]:
     """Every clip's frames of a complete cache, by source."""
     cache = FrameCache.open(path)
-    return {src: np.array(cache.clip_frames(i)) for i, src in enumerate(cache.index.column("source").to_pylist())}
+    names = cache.index.column("source").to_pylist()
+    return {src: np.array(cache.clip_frames(i)) for i, src in enumerate(names)}
 
 
 def failures(path: Path) -> dict[str, str]:
