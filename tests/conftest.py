@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import pytest
@@ -16,30 +15,14 @@ import pytest
 # ============================================================================
 
 SPOKEN_WORDS_CACHE = Path(__file__).parent / ".cache" / "spoken_words"
-_REQUIRE_SPEECH_VARIABLE = "TIMBREL_REQUIRE_SPEECH"
-
-
-def _skip_or_fail_without_espeak() -> None:
-    from speech_corpus import espeak_unavailable_reason
-
-    reason = espeak_unavailable_reason()
-    if reason is None:
-        return
-    message = (
-        f"spoken-word tests need espeak-ng ({reason}); install it with "
-        "`apt-get install espeak-ng`, or run `make test`, which installs it"
-    )
-    if os.environ.get(_REQUIRE_SPEECH_VARIABLE) == "1":
-        pytest.fail(
-            f"{message}. {_REQUIRE_SPEECH_VARIABLE}=1 is set, so this fails.", pytrace=False
-        )
-    pytest.skip(message)
 
 
 @pytest.fixture(scope="session")
 def espeak_ready() -> None:
     """Skip (or fail, under TIMBREL_REQUIRE_SPEECH=1) when espeak-ng cannot run."""
-    _skip_or_fail_without_espeak()
+    from speech_corpus import skip_or_fail_without_espeak
+
+    skip_or_fail_without_espeak()
 
 
 @pytest.fixture(scope="session")

@@ -53,6 +53,7 @@ __all__ = [
     "espeak_version",
     "installed_voice_names",
     "make_spoken_word_set",
+    "skip_or_fail_without_espeak",
 ]
 
 ESPEAK_PROGRAM = "espeak-ng"
@@ -122,6 +123,28 @@ def espeak_unavailable_reason() -> str | None:
     if completed.returncode != 0:
         return f"{ESPEAK_PROGRAM} --version exited with status {completed.returncode}"
     return None
+
+
+REQUIRE_SPEECH_VARIABLE = "TIMBREL_REQUIRE_SPEECH"
+
+
+def skip_or_fail_without_espeak() -> None:
+    """Skip the calling test when espeak-ng cannot run, or fail it when
+    ``TIMBREL_REQUIRE_SPEECH=1`` (as on CI machines, which install it)."""
+    import pytest
+
+    reason = espeak_unavailable_reason()
+    if reason is None:
+        return
+    message = (
+        f"spoken-word tests need espeak-ng ({reason}); install it with "
+        "`apt-get install espeak-ng`, or run `make test`, which installs it"
+    )
+    if os.environ.get(REQUIRE_SPEECH_VARIABLE) == "1":
+        pytest.fail(
+            f"{message}. {REQUIRE_SPEECH_VARIABLE}=1 is set, so this fails.", pytrace=False
+        )
+    pytest.skip(message)
 
 
 def espeak_available() -> bool:

@@ -329,10 +329,10 @@ def test_missing_program_is_reported_and_refused(
 def test_fixture_skips_or_fails_without_espeak(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, required: str, outcome: str
 ) -> None:
-    from conftest import _skip_or_fail_without_espeak
+    from speech_corpus import skip_or_fail_without_espeak
 
     monkeypatch.setenv("PATH", str(tmp_path))
     monkeypatch.setenv("TIMBREL_REQUIRE_SPEECH", required)
     expected = pytest.fail.Exception if outcome == "fail" else pytest.skip.Exception
     with pytest.raises(expected, match="apt-get install espeak-ng"):
-        _skip_or_fail_without_espeak()
+        skip_or_fail_without_espeak()
