@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow.dataset as ds
+import pytest
 import soundfile as sf
 from typer.testing import CliRunner
 
@@ -169,3 +170,21 @@ def same_dataset(path, ref) -> None:
     assert temporaries(path) == []
     frame_parts = {p.name for p in path.glob("part-*.parquet")}
     assert {p.name for p in (path / "_clips").glob("part-*.parquet")} == frame_parts
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    """Uninterrupted runs over 20 good clips and one bad file. A test module uses it by
+    ``reference = _faultkit.reference`` (a conftest.py here would shadow tests/conftest.py
+    under pytest's module names)."""
+    root = tmp_path_factory.mktemp("reference")
+    audio = root / "audio"
+    write_good_clips(audio, N_GOOD, seconds=0.3)
+    (audio / "zz_broken.wav").write_bytes(b"RIFF not really")
+    assert invoke("frames", audio, "--out", root / "cache", "-q", "-j", "1",
+                  *SETTINGS).exit_code == 0
+    assert invoke("fit", root / "cache", "--out", root / "model.npz", "-q",
+                  *FIT_OPTIONS).exit_code == 0
+    assert invoke("export", audio, "--model", root / "model.npz", "--out", root / "ds", "-q",
+                  "-j", "1", *EXPORT_OPTIONS).exit_code == 0
+    return root

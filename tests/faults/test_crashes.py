@@ -16,6 +16,7 @@ import subprocess
 import sys
 import time
 
+import _faultkit
 import numpy as np
 import pytest
 from _faultkit import (
@@ -33,6 +34,8 @@ from _faultkit import (
 from timbrel import CacheError
 from timbrel.cache import FrameCache
 from timbrel.model import read_model_file
+
+reference = _faultkit.reference  # the shared fixture
 
 
 def _killed(proc: subprocess.CompletedProcess) -> None:

@@ -10,6 +10,7 @@ import subprocess
 import sys
 import time
 
+import _faultkit
 import pytest
 from _faultkit import EXPORT_OPTIONS, RUNNER, same_dataset
 
@@ -20,6 +21,8 @@ cloudpickle = pytest.importorskip("cloudpickle")
 import _dask_hooks  # noqa: E402  (sent to the workers by value, they cannot import it)
 
 cloudpickle.register_pickle_by_value(_dask_hooks)
+
+reference = _faultkit.reference  # the shared fixture
 
 
 @pytest.fixture

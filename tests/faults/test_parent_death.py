@@ -16,6 +16,7 @@ import signal
 import subprocess
 import sys
 
+import _faultkit
 import pytest
 from _faultkit import (
     EXPORT_OPTIONS,
@@ -48,6 +49,8 @@ EXPORT_POINTS = [
 ]
 #: action of the runner -> the main process's expected return code
 STOPS = {"killmain": -signal.SIGKILL, "intmain": 130, "termmain": 143}
+
+reference = _faultkit.reference  # the shared fixture
 
 
 def _stopped_run(args, fault, folder):
