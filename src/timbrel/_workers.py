@@ -185,7 +185,10 @@ def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
             process.join(max(0.0, deadline - time.monotonic()))
             if process.is_alive():
                 process.kill()
-                process.join(1.0)
+                # no time limit: a killed process always ends (at worst when a disk
+                # write it is blocked in returns), and the caller removes the run's
+                # temporaries next, which only holds if no worker can write any more
+                process.join()
 
 
 def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:
