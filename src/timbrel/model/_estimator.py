@@ -518,13 +518,7 @@ class RBM(RBMQueries):
         -------
         self : RBM
         """
-        self._check_params()
-        X = as_float32_matrix(X, name="X")
-        if not (self.warm_start and hasattr(self, "weights_")):
-            self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
-        else:
-            self._check_fitted()
-            X = self._check_input(X)
+        X = self._training_rows(X, restart=not self.warm_start)
         state = self._training_state()
         n_rows, size = X.shape[0], self.batch_size
         buffer = np.empty((min(size, n_rows), X.shape[1]), F32)
@@ -538,6 +532,15 @@ class RBM(RBMQueries):
 
             self.fit_epoch(make_batches, epoch=self.n_epochs_)
         return self
+
+    def _training_rows(self, X: Any, *, restart: bool) -> np.ndarray:
+        """X as float32 rows of the model's width; the model initialised from X first when
+        ``restart`` or not yet fitted (visible biases from the data mean)."""
+        self._check_params()
+        X = as_float32_matrix(X, name="X")
+        if restart or not hasattr(self, "weights_"):
+            self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
+        return self._check_input(X)
 
     def partial_fit(self, X: Any, y: Any = None) -> RBM:
         """One CD update per minibatch of X, in the given order (one guarded epoch).
@@ -554,11 +557,7 @@ class RBM(RBMQueries):
         -------
         self : RBM
         """
-        self._check_params()
-        X = as_float32_matrix(X, name="X")
-        if not hasattr(self, "weights_"):
-            self.initialize(X.shape[1], visible_mean=X.mean(axis=0, dtype=np.float64))
-        X = self._check_input(X)
+        X = self._training_rows(X, restart=False)
         size = self.batch_size
 
         def make_batches() -> Iterable[np.ndarray]:
