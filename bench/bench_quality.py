@@ -16,7 +16,7 @@ on every domain, at least 10 points ahead of MFCC, ahead of binary hiddens).
 
 Run: python bench/bench_quality.py [--views validation,test] [--seeds 0,1,2]
      [--domains speech,instruments,drums] [--override KEY=VALUE ...] [--epochs N]
-     [--json FILE]
+     [--relu-only] [--stack] [--no-demo] [--json FILE]
 """
 
 from __future__ import annotations
@@ -52,7 +52,7 @@ def _train_manifest(folder: Path) -> Path:
 
 
 def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[str],
-               work: Path, *, relu_only: bool = False) -> dict:
+               work: Path, *, relu_only: bool = False, stack: bool = False) -> dict:
     from timbrel.cache import build_cache
     from timbrel.config import load_config
     from timbrel.evaluation import probe
@@ -83,7 +83,28 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
                     name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
                         score.name.split("-")[0]
                     scores[view].setdefault(name, []).append(score.accuracy)
+            if stack and hidden == "relu":
+                _score_stack(cache, model, config, view_manifests, views, seed,
+                             work / domain, scores)
     return {"scores": scores, "train_seconds_relu": seconds}
+
+
+def _score_stack(cache: Path, lower: Path, config, view_manifests: dict, views: list[str],
+                 seed: int, work: Path, scores: dict) -> None:
+    """A second layer (same settings) trained on the relu model's activations, scored on
+    its own features (``rbm-stack``) and on both layers' side by side (``rbm-stack-all``)."""
+    from timbrel.evaluation import probe
+    from timbrel.export import export
+    from timbrel.training import train
+
+    upper = work / f"stack-{seed}.npz"
+    train(cache, upper, config=config, on=lower)
+    for view in views:
+        for layer, name in (("top", "rbm-stack"), ("all", "rbm-stack-all")):
+            dataset = work / f"stack-{seed}-{view}-{layer}"
+            export(view_manifests[view], upper, dataset, overwrite=True, layer=layer)
+            result = probe(dataset, baselines=(), seed=seed)
+            scores[view].setdefault(name, []).append(result.scores[0].accuracy)
 
 
 def demo_fit_seconds(work: Path) -> float:
@@ -103,7 +124,9 @@ def _summary(values: list[float]) -> dict:
 
 
 def table(results: dict, view: str) -> str:
-    names = ["rbm-relu", "rbm-binary", *PEERS]
+    present = {n for r in results.values() for n in r["scores"][view]}
+    names = [n for n in ("rbm-relu", "rbm-binary", *PEERS, "rbm-stack", "rbm-stack-all")
+             if n in present]
     lines = [f"{view} split, accuracy: mean over seeds [min-max]",
              f"{'domain':<12}" + "".join(f"{n:>20}" for n in names)]
     for domain, r in results.items():
@@ -144,6 +167,8 @@ def main(argv: list[str] | None = None) -> dict:
                         help="skip timing the default fit on the demo cache")
     parser.add_argument("--relu-only", action="store_true",
                         help="only the relu models, no binary and no peers (to screen a lever)")
+    parser.add_argument("--stack", action="store_true",
+                        help="also a second relu layer on each relu model (fit --on)")
     parser.add_argument("--json", type=Path)
     args = parser.parse_args(argv)
     views = args.views.split(",")
@@ -155,7 +180,7 @@ def main(argv: list[str] | None = None) -> dict:
             print(domains.describe(domain))
             began = time.perf_counter()
             results[domain] = run_domain(domain, views, seeds, overrides, work,
-                                         relu_only=args.relu_only)
+                                         relu_only=args.relu_only, stack=args.stack)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
         demo_seconds = None if args.no_demo else demo_fit_seconds(work)
     out = {"overrides": overrides, "seeds": seeds, "domains": results,
