@@ -262,6 +262,73 @@ def test_killed_export_resumes_with_every_frame_exactly_once(tmp_path, setup):
     assert not [p for p in out.iterdir() if p.name.endswith(".part")]
 
 
+def test_parts_an_old_run_publishes_mid_run_never_stay(tmp_path, setup, monkeypatch):
+    # A Dask client killed and started again: the cluster still runs the old client's
+    # tasks. One of them may publish its clip-table part and then lose its frame part
+    # (refused, or its temporary removed by the new run), or publish both before the new
+    # run's token lands. Planted here at the new run's first clip, as such a task would.
+    import shutil
+
+    import timbrel.export as ex
+
+    clean = tmp_path / "clean"
+    export(setup["cache"], setup["model"], clean, workers=1, pool=["mean"])
+    clip_part = next((clean / "_clips").glob("part-*.parquet"))
+    frame_part = clean / clip_part.name
+    out = tmp_path / "ds"
+    original = ex._export_clip
+    planted = []
+
+    def export_clip(*args, **kwargs):
+        if not planted:
+            shutil.copy(clip_part, out / "_clips" / "part-0000000000000000.parquet")
+            shutil.copy(clip_part, out / "_clips" / "part-1111111111111111.parquet")
+            shutil.copy(frame_part, out / "part-1111111111111111.parquet")
+            planted.append(True)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(ex, "_export_clip", export_clip)
+    export(setup["cache"], setup["model"], out, workers=1, pool=["mean"])
+    assert planted
+    clips = sorted(p.name for p in (out / "_clips").glob("part-*.parquet"))
+    assert clips == sorted(p.name for p in out.glob("part-*.parquet"))
+    assert _sorted_table(out).equals(_sorted_table(clean))
+    ours = pads.dataset(out / "_clips").to_table().sort_by("source")
+    assert ours.equals(pads.dataset(clean / "_clips").to_table().sort_by("source"))
+
+
+def test_a_replaced_run_cannot_publish(tmp_path, setup):
+    import threading
+
+    from timbrel._atomic import atomic_path
+    from timbrel.export import RECORD, _publish_lock, _publishing
+
+    out = tmp_path / "ds"
+    export(setup["cache"], setup["model"], out, workers=1)
+    run = json.loads((out / RECORD).read_text())["run"]
+    with pytest.raises(ExportError, match="a later export run took over"):
+        with atomic_path(out / "late.bin", guard=lambda: _publishing(out, "an-old-run")) as t:
+            t.write_bytes(b"x")
+    assert not (out / "late.bin").exists()
+    assert not [p for p in out.iterdir() if p.name.endswith(".part")]
+    # while the driver holds the publish lock (to swap the run token), a task of the
+    # current run waits for it, then publishes
+    published = threading.Event()
+
+    def publish():
+        with atomic_path(out / "ok.bin", guard=lambda: _publishing(out, run)) as t:
+            t.write_bytes(b"x")
+        published.set()
+
+    with _publish_lock(out):
+        worker = threading.Thread(target=publish)
+        worker.start()
+        assert not published.wait(0.5)
+        assert not (out / "ok.bin").exists()
+    worker.join(10)
+    assert published.is_set() and (out / "ok.bin").read_bytes() == b"x"
+
+
 def test_dask_cluster_gives_the_same_dataset(tmp_path, setup):
     distributed = pytest.importorskip("distributed")
     export(setup["manifest"], setup["model"], tmp_path / "local", workers=2)

@@ -30,15 +30,17 @@ def make_folder(path: str | Path) -> Path:
 
 
 @contextlib.contextmanager
-def atomic_path(path: str | Path, *, before_publish: Callable[[], None] | None = None
+def atomic_path(path: str | Path, *,
+                guard: Callable[[], contextlib.AbstractContextManager[object]] | None = None
                 ) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` when the block succeeds.
 
     The temporary file is removed if the block raises. Data are flushed to disk before
     the rename so the rename publishes a complete file. An ``OSError`` while creating,
     writing, flushing or renaming (disk full, I/O error) becomes an :class:`OutputError`
-    naming ``path``. ``before_publish``, if given, is called just before the rename; an
-    exception from it discards the file instead of publishing it.
+    naming ``path``. ``guard``, if given, makes a context manager that is held around the
+    rename (a lock, say); an exception on entering it discards the file instead of
+    publishing it.
     """
     path = Path(path)
     try:
@@ -55,9 +57,8 @@ def atomic_path(path: str | Path, *, before_publish: Callable[[], None] | None =
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
-        if before_publish is not None:
-            before_publish()
-        os.replace(tmp_path, path)
+        with guard() if guard is not None else contextlib.nullcontext():
+            os.replace(tmp_path, path)
     except BaseException as exc:
         with contextlib.suppress(OSError):
             tmp_path.unlink()

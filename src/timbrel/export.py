@@ -211,8 +211,8 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
     done: list[dict[str, Any]] = []
     failures: list[tuple[str, str]] = []
     clip_rows: list[dict[str, Any]] = []
-    still_ours = functools.partial(_check_run, out, task.get("run"))
-    with atomic_path(part, before_publish=still_ours) as tmp:
+    still_ours = functools.partial(_publishing, out, task.get("run"))
+    with atomic_path(part, guard=still_ours) as tmp:
         writer = pq.ParquetWriter(tmp, schema, **_write_options(schema, task["compression"]))
         try:
             for job in task["jobs"]:
@@ -238,25 +238,48 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
         if pools:
             _write_clip_part(out / CLIPS_DIR / f"part-{task['id']}.parquet", clip_rows,
                              n_hidden, pools, extra_columns, metadata, task["compression"],
-                             before_publish=still_ours)
+                             guard=still_ours)
     return {"id": task["id"], "done": done, "failures": failures}
 
 
-def _check_run(out: Path, run: str | None) -> None:
-    """Refuse to publish a part for a run that a later run has replaced.
+PUBLISH_LOCK = ".publish"
+
+
+@contextlib.contextmanager
+def _publish_lock(out: Path) -> Iterator[None]:
+    """Hold ``out/.publish`` (a blocking ``flock``) for the block.
+
+    A task publishes its parts under it, and the driver takes it to change the run record
+    and for its final clean-up, so a task's check of the run and its rename are one step.
+    """
+    import fcntl
+
+    with open(out / PUBLISH_LOCK, "a") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+
+
+@contextlib.contextmanager
+def _publishing(out: Path, run: str | None) -> Iterator[None]:
+    """Publish a part only for the run that owns the folder now.
 
     A Dask cluster finishes the tasks of a client that was killed; when the client is
     started again it chunks the remaining clips anew, so such a task's part would repeat
     clips of the new run's parts. The new run writes its own token into the run record
-    before it submits anything.
+    (under the same lock) before it submits anything, so an old task is refused here.
     """
-    try:
-        current = json.loads((out / RECORD).read_text(encoding="utf-8")).get("run")
-    except (OSError, ValueError):
-        current = None
-    if current != run:
-        raise ExportError(f"{out}: a later export run took over this folder; "
-                          "this task's part is discarded")
+    with _publish_lock(out):
+        try:
+            current = json.loads((out / RECORD).read_text(encoding="utf-8")).get("run")
+        except (OSError, ValueError):
+            current = None
+        if current != run:
+            raise ExportError(f"{out}: a later export run took over this folder; "
+                              "this task's part is discarded")
+        yield
 
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
@@ -388,7 +411,8 @@ def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[st
 def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
                      metadata: dict[bytes, bytes], compression: str, *,
-                     before_publish: Callable[[], None] | None = None) -> None:
+                     guard: Callable[[], contextlib.AbstractContextManager[object]] | None = None
+                     ) -> None:
     schema = clip_schema(n_hidden, pools, extra_columns, metadata=metadata)
     arrays: list[pa.Array] = [
         _string_array([r["source"] for r in rows]),
@@ -400,7 +424,7 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
         arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat),
                                                         type=_vector_type(n_hidden)))
     arrays.extend(_string_array([r[c] for r in rows]) for c in extra_columns)
-    with atomic_path(path, before_publish=before_publish) as tmp:
+    with atomic_path(path, guard=guard) as tmp:
         pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
                        **_write_options(schema, compression))
 
@@ -568,7 +592,8 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     # client was killed) see it and discard their parts instead of publishing them
     run = uuid.uuid4().hex
     record = {**metadata, "complete": False, "extra_columns": extra_columns, "run": run}
-    _write_record(out, record)
+    with _publish_lock(out):
+        _write_record(out, record)
     todo = [j for j in jobs if j["source"] not in done]
     n_workers = max(1, workers or os.cpu_count() or 1)
     tasks = [{**options, "id": _task_id(pipe.checksum, chunk), "jobs": chunk,
@@ -581,7 +606,9 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     n_frames, seconds, failures = _run_tasks(tasks, scheduler=scheduler, workers=n_workers,
                                              n_jobs=len(jobs), n_skipped=len(jobs) - len(todo),
                                              progress=progress, t0=t0)
-    _drop_parts_of_other_runs(out, keep=done_parts | {f"part-{t['id']}.parquet" for t in tasks})
+    with _publish_lock(out):
+        _drop_parts_of_other_runs(out, keep=done_parts | {f"part-{t['id']}.parquet"
+                                                          for t in tasks})
     _write_failures(out, failures)
     finished, _, _ = _finished_parts(out, pipe.checksum)
     record.update(complete=True, n_sources=len(finished), finished_sources=sorted(finished))
@@ -667,12 +694,13 @@ def _drop_parts_of_other_runs(out: Path, *, keep: set[str]) -> None:
 
     Such a part comes from a task of an earlier run that was still running when this
     run looked at the folder (a Dask client killed and started again: the cluster
-    finishes what it had started). Every clip it holds is also in a part kept here.
+    finishes what it had started). Every clip it holds is also in a part kept here. A
+    clip-table part goes too when its frame part was never published (the old task
+    was refused, or its temporary removed, between the two).
     """
-    for part in out.glob("part-*.parquet"):
+    for part in [*out.glob("part-*.parquet"), *(out / CLIPS_DIR).glob("part-*.parquet")]:
         if part.name not in keep:
             with contextlib.suppress(OSError):
-                (out / CLIPS_DIR / part.name).unlink(missing_ok=True)
                 part.unlink()
     remove_stale_temporaries(out)
     remove_stale_temporaries(out / CLIPS_DIR)
