@@ -16,7 +16,8 @@ on every domain, at least 10 points ahead of MFCC, ahead of binary hiddens).
 
 Run: python bench/bench_quality.py [--views validation,test] [--seeds 0,1,2]
      [--domains speech,instruments,drums] [--override KEY=VALUE ...] [--epochs N]
-     [--relu-only] [--stack] [--no-demo] [--json FILE]
+     [--relu-only | --no-binary] [--stack] [--pool mean,max ...] [--no-demo]
+     [--json FILE]
 """
 
 from __future__ import annotations
@@ -52,7 +53,8 @@ def _train_manifest(folder: Path) -> Path:
 
 
 def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[str],
-               work: Path, *, relu_only: bool = False, stack: bool = False) -> dict:
+               work: Path, *, relu_only: bool = False, stack: bool = False,
+               no_binary: bool = False, pools: list[str] | None = None) -> dict:
     from timbrel.cache import build_cache
     from timbrel.config import load_config
     from timbrel.evaluation import probe
@@ -66,7 +68,7 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
     scores: dict[str, dict[str, list[float]]] = {v: {} for v in views}
     seconds: list[float] = []
     for seed in seeds:
-        for hidden in ("relu",) if relu_only else ("relu", "binary"):
+        for hidden in ("relu",) if relu_only or no_binary else ("relu", "binary"):
             config = load_config(overrides=[*overrides, f'model.hidden="{hidden}"',
                                             f"model.seed={seed}"])
             model = work / domain / f"{hidden}-{seed}.npz"
@@ -78,19 +80,23 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
                 dataset = work / domain / f"{hidden}-{seed}-{view}"
                 export(view_manifests[view], model, dataset, overwrite=True)
                 peers = PEERS if hidden == "relu" and not relu_only else ()
-                result = probe(dataset, baselines=peers, seed=seed)
-                for score in result.scores:
-                    name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
-                        score.name.split("-")[0]
-                    scores[view].setdefault(name, []).append(score.accuracy)
+                for i, pool in enumerate(pools or [None]):
+                    # MFCC and log-mel pool their own way: scored with the first pooling
+                    result = probe(dataset, seed=seed, **_pools(pool),
+                                   baselines=[p for p in peers if i == 0 or p == "kmeans"])
+                    for score in result.scores:
+                        name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
+                            score.name.split("-")[0]
+                        scores[view].setdefault(_pooled(name, pool, pools),
+                                                []).append(score.accuracy)
             if stack and hidden == "relu":
                 _score_stack(cache, model, config, view_manifests, views, seed,
-                             work / domain, scores)
+                             work / domain, scores, pools)
     return {"scores": scores, "train_seconds_relu": seconds}
 
 
 def _score_stack(cache: Path, lower: Path, config, view_manifests: dict, views: list[str],
-                 seed: int, work: Path, scores: dict) -> None:
+                 seed: int, work: Path, scores: dict, pools: list[str] | None) -> None:
     """A second layer (same settings) trained on the relu model's activations, scored on
     its own features (``rbm-stack``) and on both layers' side by side (``rbm-stack-all``)."""
     from timbrel.evaluation import probe
@@ -103,8 +109,22 @@ def _score_stack(cache: Path, lower: Path, config, view_manifests: dict, views: 
         for layer, name in (("top", "rbm-stack"), ("all", "rbm-stack-all")):
             dataset = work / f"stack-{seed}-{view}-{layer}"
             export(view_manifests[view], upper, dataset, overwrite=True, layer=layer)
-            result = probe(dataset, baselines=(), seed=seed)
-            scores[view].setdefault(name, []).append(result.scores[0].accuracy)
+            for pool in pools or [None]:
+                result = probe(dataset, baselines=(), seed=seed, **_pools(pool))
+                scores[view].setdefault(_pooled(name, pool, pools),
+                                        []).append(result.scores[0].accuracy)
+
+
+def _pools(pool: str | None) -> dict:
+    """The probe's keyword for one ``--pool`` value: learned and k-means features alike."""
+    return {} if pool is None else {"pools": tuple(pool.split(","))}
+
+
+def _pooled(name: str, pool: str | None, pools: list[str] | None) -> str:
+    """A score's column: the feature set's name, with its pooling when several are compared
+    (the peers that pool their own way, MFCC and log-mel, are the same in each)."""
+    return name if not pools or len(pools) == 1 or name in ("mfcc", "logmel") \
+        else f"{name}@{pool}"
 
 
 def demo_fit_seconds(work: Path) -> float:
@@ -125,8 +145,8 @@ def _summary(values: list[float]) -> dict:
 
 def table(results: dict, view: str) -> str:
     present = {n for r in results.values() for n in r["scores"][view]}
-    names = [n for n in ("rbm-relu", "rbm-binary", *PEERS, "rbm-stack", "rbm-stack-all")
-             if n in present]
+    order = ("rbm-relu", "rbm-binary", *PEERS, "rbm-stack", "rbm-stack-all")
+    names = sorted(present, key=lambda n: (order.index(n.split("@")[0]), n))
     lines = [f"{view} split, accuracy: mean over seeds [min-max]",
              f"{'domain':<12}" + "".join(f"{n:>20}" for n in names)]
     for domain, r in results.items():
@@ -169,6 +189,12 @@ def main(argv: list[str] | None = None) -> dict:
                         help="only the relu models, no binary and no peers (to screen a lever)")
     parser.add_argument("--stack", action="store_true",
                         help="also a second relu layer on each relu model (fit --on)")
+    parser.add_argument("--no-binary", action="store_true",
+                        help="the relu models and the peers, no binary models")
+    parser.add_argument("--pool", action="append", default=None, metavar="P[,P]",
+                        help="the probe's pooling of the learned and k-means features "
+                             "(default: the probe's own, max); repeat to compare poolings "
+                             "on the same models")
     parser.add_argument("--json", type=Path)
     args = parser.parse_args(argv)
     views = args.views.split(",")
@@ -180,10 +206,11 @@ def main(argv: list[str] | None = None) -> dict:
             print(domains.describe(domain))
             began = time.perf_counter()
             results[domain] = run_domain(domain, views, seeds, overrides, work,
-                                         relu_only=args.relu_only, stack=args.stack)
+                                         relu_only=args.relu_only, stack=args.stack,
+                                         no_binary=args.no_binary, pools=args.pool)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
         demo_seconds = None if args.no_demo else demo_fit_seconds(work)
-    out = {"overrides": overrides, "seeds": seeds, "domains": results,
+    out = {"overrides": overrides, "pools": args.pool, "seeds": seeds, "domains": results,
            "tables": {}, "targets": {}, "demo_fit_seconds": demo_seconds}
     if demo_seconds is not None:
         print(f"default fit on the demo cache: {demo_seconds:.1f} s (target under 60 s)")
