@@ -111,11 +111,11 @@ class RBM(RBMQueries):
         Gibbs steps per update (CD-k), ≥ 1.
     persistent : bool, default=False
         Persistent CD: ``batch_size`` negative chains carried across minibatches.
-    learning_rate : float, default=1e-3
+    learning_rate : float, default=3e-3
         Step size for weights and biases, > 0.  Gaussian visibles need a small rate
         (Hinton 2010 suggests 1–2 orders below the binary case); 0.01–0.1 suits binary
         visibles.
-    variance_learning_rate : float, default=1e-4
+    variance_learning_rate : float, default=3e-4
         Step size for the log-variances zᵢ = log σᵢ², ≥ 0.
     initial_momentum, final_momentum : float, default=0.5, 0.9
         Momentum before and from ``momentum_switch_epoch`` on, in [0, 1).
@@ -221,8 +221,8 @@ class RBM(RBMQueries):
         layout: tuple[int, int] | None = None,
         n_steps: int = 1,
         persistent: bool = False,
-        learning_rate: float = 1e-3,
-        variance_learning_rate: float = 1e-4,
+        learning_rate: float = 3e-3,
+        variance_learning_rate: float = 3e-4,
         initial_momentum: float = 0.5,
         final_momentum: float = 0.9,
         momentum_switch_epoch: int = 5,
