@@ -8,6 +8,8 @@ one table, one row per frame::
                                  with ``pool``: one row per clip, pooled features
     DATASET/_export.json         the run record: model checksum, options, finished sources
     DATASET/_failures.csv        files that could not be used, with the reason
+    DATASET/.lock, .publish      the running export's lock; the short lock a part is
+                                 published under (see :func:`_publishing`)
 
 Names starting with ``_`` or ``.`` are skipped by dataset readers. Each part is written
 under a temporary ``.``-name and renamed when complete, and lists its clips in its own
