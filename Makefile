@@ -13,7 +13,7 @@ TEST_ARGS ?= -m "not slow"
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e '.[test,plot,dask]'
+	$(PY) -m pip install --quiet -e '.[test,plot,dask,store]'
 	touch $@
 
 demo: $(VENV)/.installed

@@ -302,12 +302,14 @@ def test_a_replaced_run_cannot_publish(tmp_path, setup):
 
     from timbrel._atomic import atomic_path
     from timbrel.export import RECORD, _publish_lock, _publishing
+    from timbrel.store import LocalFolder
 
     out = tmp_path / "ds"
     export(setup["cache"], setup["model"], out, workers=1)
+    folder = LocalFolder(out)
     run = json.loads((out / RECORD).read_text())["run"]
     with pytest.raises(ExportError, match="a later export run took over"):
-        with atomic_path(out / "late.bin", guard=lambda: _publishing(out, "an-old-run")) as t:
+        with atomic_path(out / "late.bin", guard=lambda: _publishing(folder, "an-old-run")) as t:
             t.write_bytes(b"x")
     assert not (out / "late.bin").exists()
     assert not [p for p in out.iterdir() if p.name.endswith(".part")]
@@ -316,11 +318,11 @@ def test_a_replaced_run_cannot_publish(tmp_path, setup):
     published = threading.Event()
 
     def publish():
-        with atomic_path(out / "ok.bin", guard=lambda: _publishing(out, run)) as t:
+        with atomic_path(out / "ok.bin", guard=lambda: _publishing(folder, run)) as t:
             t.write_bytes(b"x")
         published.set()
 
-    with _publish_lock(out):
+    with _publish_lock(folder):
         worker = threading.Thread(target=publish)
         worker.start()
         assert not published.wait(0.5)

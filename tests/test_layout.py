@@ -12,7 +12,7 @@ import pytest
 SRC = Path(__file__).parents[1] / "src" / "timbrel"
 
 #: Modules from the earliest stage to the latest; a module may import only those before it.
-STAGES = ["_errors", "_atomic", "_progress", "_threads", "_workers", "config", "audio",
+STAGES = ["_errors", "_atomic", "store", "_progress", "_threads", "_workers", "config", "audio",
           "frontend", "pooling", "events", "cache", "model", "windows", "pipeline", "training",
           "extractor", "export", "evaluation", "detection", "likelihood", "plots", "cli"]
 
@@ -67,8 +67,9 @@ def test_model_submodules_import_one_way():
             if name.startswith("model."):
                 stage = MODEL_STAGES.index(name.split(".")[1])
                 assert stage < own, f"model/{file.name} imports {name}, a later module"
-            else:  # the model is pure numpy: only the error types and the atomic writer
-                assert name.split(".")[0] in ("_errors", "_atomic"), (file.name, name)
+            else:  # the model is pure numpy: only the error types, the atomic writer and
+                # the store's reader of a model file at a URL
+                assert name.split(".")[0] in ("_errors", "_atomic", "store"), (file.name, name)
 
 
 def test_nothing_reads_models_through_the_trainer():

@@ -221,3 +221,37 @@ def even_chunks(items: Sequence[Any], workers: int, *, most: int) -> list[list[A
         chunks.append(list(items[start:stop]))
         start = stop
     return chunks
+
+
+@contextlib.contextmanager
+def dask_results(function: Callable[[Any], Result], tasks: Sequence[Any], address: str, *,
+                 key: Callable[[Any], str], error: type[Exception]
+                 ) -> Iterator[Iterator[Result]]:
+    """Run ``function`` on each task on a Dask cluster; results in order of completion.
+
+    Parameters
+    ----------
+    function : callable
+        A module-level function; every worker imports timbrel to run it.
+    tasks : sequence
+        Picklable arguments, one task each.
+    address : str
+        The scheduler's address, ``tcp://host:8786``.
+    key : callable
+        The Dask key of a task (a task run again under the same key is not run twice
+        while the cluster still holds it).
+    error : type
+        The exception raised, with one line, when Dask is missing or the scheduler cannot
+        be reached.
+    """
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise error("--scheduler needs the dask extra: pip install 'timbrel[dask]'") from None
+    try:
+        client = Client(address, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise error(f"cannot reach the Dask scheduler at {address} ({exc})") from None
+    with client:
+        futures = [client.submit(function, task, key=key(task), pure=False) for task in tasks]
+        yield (future.result() for future in as_completed(futures))

@@ -12,8 +12,10 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import io
 import math
 import os
+import posixpath
 import struct
 from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
@@ -22,6 +24,7 @@ from typing import BinaryIO
 import numpy as np
 import soundfile as sf
 
+from . import store
 from ._atomic import os_reason
 from ._errors import AudioReadError, ParameterError
 
@@ -60,8 +63,9 @@ class AudioItem:
 
     Attributes
     ----------
-    path : Path
-        Absolute path of the file.
+    path : Path or str
+        Absolute path of the file, or its URL for a source in an object store
+        (see :mod:`timbrel.store`).
     source : str
         Path relative to the source root, with ``/`` separators; the clip's name in
         every output. Undecodable bytes in a file name appear as ``\\xNN`` escapes
@@ -70,7 +74,7 @@ class AudioItem:
         Manifest columns other than ``path`` (empty for a folder source).
     """
 
-    path: Path
+    path: Path | str
     source: str
     extra: Mapping[str, str] = dataclasses.field(default_factory=dict)
 
@@ -105,7 +109,9 @@ def discover(source: str | Path, *, allow_outside: bool = False
     ----------
     source : str or Path
         A folder (searched recursively for :data:`AUDIO_EXTENSIONS`, sorted by
-        relative path) or a ``.csv`` manifest with a ``path`` column.
+        relative path) or a ``.csv`` manifest with a ``path`` column. Either may be a
+        URL (``s3://bucket/prefix/``): a manifest's relative paths are then relative
+        to the manifest's URL.
     allow_outside : bool, default False
         Accept manifest paths that lead outside the manifest's folder (absolute
         paths, ``..``). Refused by default so a manifest cannot make timbrel read
@@ -125,7 +131,9 @@ def discover(source: str | Path, *, allow_outside: bool = False
         manifest), the manifest lacks a ``path`` column, repeats a path, or names a path
         outside its folder without ``allow_outside``.
     """
-    root = Path(source)
+    if store.is_url(source):
+        return _discover_url(str(source), allow_outside=allow_outside)
+    root = store.local(source)
     if root.is_dir():
         items = _discover_folder(root)
         if not items:
@@ -167,6 +175,66 @@ def _discover_folder(root: Path) -> list[AudioItem]:
                                        source=display_name(path.relative_to(root).as_posix())))
     items.sort(key=lambda item: item.source)
     return items
+
+
+def _discover_url(url: str, *, allow_outside: bool) -> tuple[list[AudioItem], list[str]]:
+    """:func:`discover` for a folder or manifest in an object store."""
+    if url.lower().endswith(".csv"):
+        if not store.exists(url):
+            raise ParameterError(f"{url}: no such manifest")
+        text = store.read_bytes(url)
+        items, extra = _manifest_items(url, text, allow_outside=allow_outside)
+        if not items:
+            raise ParameterError(f"{url}: the manifest lists no files (no row below its header)")
+        return items, extra
+    root = url.rstrip("/")
+    items = [AudioItem(path=found, source=found[len(root) + 1:])
+             for found in store.list_files(root)
+             if posixpath.splitext(found)[1].lower() in AUDIO_EXTENSIONS]
+    if not items:
+        raise ParameterError(f"{url}: no audio files under this prefix (searched for "
+                             f"{', '.join(AUDIO_EXTENSIONS)})")
+    return sorted(items, key=lambda item: item.source), []
+
+
+def _manifest_items(url: str, text: bytes, *, allow_outside: bool
+                    ) -> tuple[list[AudioItem], list[str]]:
+    """Items of a manifest in a store; relative paths are relative to its URL."""
+    try:
+        reader = csv.DictReader(io.StringIO(text.decode("utf-8"), newline=""))
+        columns = list(reader.fieldnames or [])
+        rows = list(reader)
+    except UnicodeDecodeError:
+        raise ParameterError(f"{url}: manifest is not UTF-8 text") from None
+    except csv.Error as exc:
+        raise ParameterError(f"{url}: cannot read manifest ({exc})") from None
+    if "path" not in columns:
+        raise ParameterError(f"{url}: manifest has no 'path' column (columns: {columns})")
+    base = store.parent(url)
+    extra_columns = [c for c in columns if c != "path"]
+    items: list[AudioItem] = []
+    seen: set[str] = set()
+    for line, row in enumerate(rows, start=2):
+        rel = (row.get("path") or "").strip()
+        if not rel:
+            raise ParameterError(f"{url}:{line}: empty path")
+        if store.is_url(rel) or rel.startswith("/") or \
+                posixpath.normpath(rel).startswith(".."):
+            if not allow_outside:
+                raise ParameterError(f"{url}:{line}: path {rel!r} leads outside the "
+                                     f"manifest's folder {base}; pass the option that "
+                                     "allows outside paths if this is intended")
+            target = rel if store.is_url(rel) else store.join(base, rel)
+            source = rel
+        else:
+            source = posixpath.normpath(rel)
+            target = store.join(base, source)
+        if source in seen:
+            raise ParameterError(f"{url}:{line}: path {rel!r} is listed twice")
+        seen.add(source)
+        items.append(AudioItem(path=target, source=source,
+                               extra={c: (row.get(c) or "") for c in extra_columns}))
+    return items, extra_columns
 
 
 def _discover_manifest(manifest: Path, *, allow_outside: bool) -> tuple[list[AudioItem], list[str]]:

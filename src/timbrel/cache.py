@@ -18,7 +18,7 @@ including clips finished by a run that crashed.
 
 from __future__ import annotations
 
-import contextlib
+import collections
 import csv
 import dataclasses
 import json
@@ -33,19 +33,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import __version__
-from ._atomic import (
-    atomic_open,
-    atomic_path,
-    folder_lock,
-    make_folder,
-    os_reason,
-    remove_stale_temporaries,
-)
+from . import __version__, store
+from ._atomic import os_reason
 from ._errors import AudioReadError, CacheError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
-from ._workers import Interrupted, even_chunks, task_results
+from ._workers import Interrupted, dask_results, even_chunks, task_results
 from .audio import (
     AudioItem,
     counted_blocks,
@@ -63,6 +56,7 @@ __all__ = ["INDEX_SCHEMA", "CacheSummary", "ClipFailure", "FrameCache", "build_c
 CACHE_FORMAT = "timbrel-frame-cache"
 CACHE_VERSION = 1
 MARKER = "cache.json"
+SHARDS = "shards"
 FAILURES = "failures.csv"
 
 #: Columns every index has; manifest columns follow as strings.
@@ -83,6 +77,8 @@ INDEX_SCHEMA = pa.schema([
 FILES_PER_TASK = 16
 #: Frames of one clip folded into the band statistics at a time: bounds memory.
 STATS_FRAMES = 16384
+#: Bytes of recently read clips a cache in an object store keeps in memory.
+STORE_CLIP_BYTES = 256 * 2**20
 
 
 @dataclasses.dataclass(frozen=True)
@@ -97,7 +93,7 @@ class ClipFailure:
 class CacheSummary:
     """What :func:`build_cache` did."""
 
-    path: Path
+    path: Path | str
     n_files: int
     n_clips: int
     n_reused: int
@@ -117,11 +113,13 @@ class CacheSummary:
                 f"{self.n_frames} frames, {self.audio_seconds / 3600:.3f} h of audio "
                 f"in {self.wall_seconds:.1f} s")
         if self.failures:
-            text += f"; {self.n_failed} FAILED (see {self.path / FAILURES})"
+            text += f"; {self.n_failed} FAILED (see {store.join(str(self.path), FAILURES)})"
         return text
 
 
 def _file_key(item: AudioItem) -> tuple[int, int]:
+    if store.is_url(item.path):
+        return store.stat_key(str(item.path))
     st = os.stat(item.path)
     return int(st.st_size), int(st.st_mtime_ns)
 
@@ -139,12 +137,12 @@ def _process_task(task: dict[str, Any]) -> dict[str, Any]:
 def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
     fe_config = FrontEndConfig(**task["frontend"])
     frontend = FrontEnd(fe_config)
-    shard_dir = Path(task["shard_dir"])
+    out = store.folder(task["out"])
     shard_id = task["shard_id"]
     entries: list[dict[str, Any]] = []
     failures: list[tuple[str, str]] = []
-    frames_path = shard_dir / f"{shard_id}.f32"
-    with atomic_path(frames_path) as tmp, open(tmp, "wb") as fh:
+    frames_path = out.url(f"{SHARDS}/{shard_id}.f32")
+    with out.writing(f"{SHARDS}/{shard_id}.f32") as tmp, open(tmp, "wb") as fh:
 
         def write(data: bytes) -> None:
             # a write error is the output's fault, never the input file's: it stops the run
@@ -158,7 +156,8 @@ def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
             start = fh.tell()
             try:
                 entry = _frame_one(job, frontend, write)
-            except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
+            except (AudioReadError, ParameterError, store.StoreError, OSError, ValueError,
+                    RuntimeError) as exc:
                 fh.seek(start)
                 fh.truncate(start)
                 reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
@@ -170,48 +169,48 @@ def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
         fh.flush()
     sidecar = {"format": CACHE_FORMAT, "n_mels": fe_config.n_mels,
                "frame_key": task["frame_key"], "clips": entries}
-    with atomic_open(shard_dir / f"{shard_id}.json", "w", encoding="utf-8") as out:
-        json.dump(sidecar, out)
+    with out.writing(f"{SHARDS}/{shard_id}.json") as tmp:
+        tmp.write_text(json.dumps(sidecar), encoding="utf-8")
     return {"shard": shard_id, "entries": entries, "failures": failures}
 
 
 def _frame_one(job: dict[str, Any], frontend: FrontEnd, write: Callable[[bytes], None]
                ) -> dict[str, Any]:
-    path = Path(job["path"])
     c = frontend.config
-    info = read_info(path)
     n_frames = 0
     n_samples = [0]  # decoded samples, for the reason a clip too short gives
-    blocks = counted_blocks(read_blocks(path, sr=c.sample_rate, channel=c.channel), n_samples)
-    for frames in frontend.stream(blocks, c.sample_rate):
-        write(np.ascontiguousarray(frames, np.float32).tobytes())
-        n_frames += len(frames)
+    with store.local_copy(job["path"]) as path:
+        info = read_info(path)
+        blocks = counted_blocks(read_blocks(path, sr=c.sample_rate, channel=c.channel),
+                                n_samples)
+        for frames in frontend.stream(blocks, c.sample_rate):
+            write(np.ascontiguousarray(frames, np.float32).tobytes())
+            n_frames += len(frames)
     if n_frames == 0:
-        raise AudioReadError(display_name(str(path)), frontend.too_short_reason(n_samples[0]))
+        raise AudioReadError(display_name(job["path"]), frontend.too_short_reason(n_samples[0]))
     return {"source": job["source"], "key": job["key"], "n_frames": n_frames,
             "duration_s": info.duration, "sample_rate": info.sample_rate,
             "channels": info.channels, "file_size": job["size"], "mtime_ns": job["mtime_ns"]}
 
 
-def _read_sidecars(shard_dir: Path, frame_key: str) -> dict[str, dict[str, Any]]:
+def _read_sidecars(out: store.Folder, frame_key: str) -> dict[str, dict[str, Any]]:
     """Clip entries of every complete shard with these frame settings, by clip key."""
     pool: dict[str, dict[str, Any]] = {}
-    if not shard_dir.is_dir():
-        return pool
-    for meta in sorted(shard_dir.glob("*.json")):
+    for meta in out.names(f"{SHARDS}/*.json"):
         try:
-            data = json.loads(meta.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
+            data = json.loads(out.read_bytes(meta).decode("utf-8"))
+        except (OSError, ValueError, store.StoreError):
             continue
         if data.get("format") != CACHE_FORMAT or data.get("frame_key") != frame_key:
             continue
-        frames_path = meta.with_suffix(".f32")
-        if not frames_path.is_file():
+        size = out.size(meta[:-len(".json")] + ".f32")
+        if size is None:
             continue
-        n_total = frames_path.stat().st_size // (4 * int(data["n_mels"]))
+        n_total = size // (4 * int(data["n_mels"]))
+        stem = meta[len(SHARDS) + 1:-len(".json")]
         for entry in data["clips"]:
             if entry["offset"] + entry["n_frames"] <= n_total:
-                pool[entry["key"]] = {**entry, "shard": meta.stem}
+                pool[entry["key"]] = {**entry, "shard": stem}
     return pool
 
 
@@ -221,6 +220,7 @@ def build_cache(
     *,
     config: Config | None = None,
     workers: int | None = None,
+    scheduler: str | None = None,
     allow_outside: bool = False,
     progress: bool = False,
 ) -> CacheSummary:
@@ -229,14 +229,19 @@ def build_cache(
     Parameters
     ----------
     source : str or Path
-        A folder of audio files or a manifest CSV (see :func:`timbrel.audio.discover`).
+        A folder of audio files or a manifest CSV (see :func:`timbrel.audio.discover`),
+        local or a URL (``s3://bucket/prefix/``, see :mod:`timbrel.store`).
     out : str or Path
-        Cache folder; created if missing. An existing cache there is updated:
-        unchanged clips are reused, clips no longer in the source are dropped.
+        Cache folder, local or a URL; created if missing. An existing cache there is
+        updated: unchanged clips are reused, clips no longer in the source are dropped.
     config : Config, optional
         Defaults to :class:`timbrel.config.Config()`.
     workers : int, optional
         Worker processes; default: the number of CPU cores. ``1`` runs in-process.
+    scheduler : str, optional
+        Address of a Dask scheduler (``tcp://host:8786``): the files are framed by its
+        workers instead of local processes, into the same shards. Each worker must reach
+        the sources and ``out`` (a store URL, or a shared file system).
     allow_outside : bool, default False
         Accept manifest paths outside the manifest's folder.
     progress : bool, default False
@@ -254,50 +259,50 @@ def build_cache(
         If the source is missing or malformed, or ``out`` is not a usable folder.
     CacheError
         If another run is writing into ``out`` (it holds ``out/.lock``).
+    timbrel.store.StoreError
+        If a store refuses or fails (no such bucket, no credentials, access denied).
     timbrel._workers.Interrupted
         On Ctrl-C (or SIGTERM, as the command line turns it into one): the workers are
         stopped, temporaries removed, finished shards kept for a re-run to reuse.
     """
     t0 = time.perf_counter()
     config = config or Config()
-    out = Path(out)
-    if out.exists() and not out.is_dir():
+    dest = store.folder(out)
+    if isinstance(dest, store.LocalFolder) and dest.path.exists() and not dest.path.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
     items, extra_columns = discover(source, allow_outside=allow_outside)
-    make_folder(out / "shards")
-    with folder_lock(out, error=CacheError, busy="another `frames` run is writing into this "
-                     "cache (lock held); wait for it or choose another --out"):
+    dest.prepare(SHARDS)
+    with dest.lock(error=CacheError, busy="another `frames` run is writing into this "
+                   "cache (lock held); wait for it or choose another --out"):
         try:
-            return _build_locked(source, out, items, extra_columns, config=config,
-                                 workers=workers, progress=progress, t0=t0)
+            return _build_locked(source, dest, items, extra_columns, config=config,
+                                 workers=workers, scheduler=scheduler, progress=progress,
+                                 t0=t0)
         except KeyboardInterrupt:
-            raise _interrupted(out, config.frontend.frame_key(), len(items)) from None
+            raise _interrupted(dest, config.frontend.frame_key(), len(items)) from None
 
 
-def _interrupted(out: Path, frame_key: str, n_files: int) -> Interrupted:
+def _interrupted(out: store.Folder, frame_key: str, n_files: int) -> Interrupted:
     """What a stopped run leaves: finished shards kept, temporaries removed.
 
     The workers have already ended (:func:`timbrel._workers.task_results`); a re-run
     reuses every clip of a finished shard."""
-    remove_stale_temporaries(out)
-    remove_stale_temporaries(out / "shards")
-    kept = len(_read_sidecars(out / "shards", frame_key))
-    return Interrupted(f"{out}: interrupted; the frames of {kept} of {n_files} files are "
-                       "kept in finished shards, partial shards removed; run the same "
+    out.clean_temporaries(SHARDS)
+    kept = len(_read_sidecars(out, frame_key))
+    return Interrupted(f"{out.location}: interrupted; the frames of {kept} of {n_files} files "
+                       "are kept in finished shards, partial shards removed; run the same "
                        "command again to continue")
 
 
-def _build_locked(source: str | Path, out: Path, items: list[AudioItem],
+def _build_locked(source: str | Path, out: store.Folder, items: list[AudioItem],
                   extra_columns: list[str], *, config: Config, workers: int | None,
-                  progress: bool, t0: float) -> CacheSummary:
+                  scheduler: str | None, progress: bool, t0: float) -> CacheSummary:
     """The body of :func:`build_cache`, run while holding the cache folder's lock."""
     fe = config.frontend
     frame_key = fe.frame_key()
-    shard_dir = out / "shards"
-    remove_stale_temporaries(out)
-    remove_stale_temporaries(shard_dir)
+    out.clean_temporaries(SHARDS)
 
-    pool = _read_sidecars(shard_dir, frame_key)
+    pool = _read_sidecars(out, frame_key)
     failures: dict[str, str] = {}
     entries: dict[str, dict[str, Any]] = {}
     todo: list[dict[str, Any]] = []
@@ -307,20 +312,25 @@ def _build_locked(source: str | Path, out: Path, items: list[AudioItem],
         except OSError as exc:
             failures[item.source] = unreadable_reason(exc)
             continue
+        except store.StoreError as exc:
+            failures[item.source] = str(exc).split(": ", 1)[-1]
+            continue
         key = _clip_key(item.source, size, mtime_ns, frame_key)
         if key in pool:
             entries[item.source] = pool[key]
         else:
-            todo.append({"path": os.fsdecode(item.path), "source": item.source, "key": key,
+            todo.append({"path": _item_path(item), "source": item.source, "key": key,
                          "size": size, "mtime_ns": mtime_ns})
     n_reused = len(entries)
     workers = max(1, workers or os.cpu_count() or 1)
     tasks = [{"frontend": dataclasses.asdict(fe), "frame_key": frame_key,
-              "shard_dir": str(shard_dir), "shard_id": uuid.uuid4().hex[:16],
+              "out": out.location, "shard_id": uuid.uuid4().hex[:16],
               "files": chunk} for chunk in even_chunks(todo, workers, most=FILES_PER_TASK)]
 
     # the pool starts before the progress bar's thread, so its workers can be forked
-    with task_results(_process_task, tasks, workers, preload=[__name__]) as results, \
+    with (dask_results(_process_task, tasks, scheduler, error=CacheError,
+                       key=lambda t: f"timbrel-frames-{t['shard_id']}") if scheduler
+          else task_results(_process_task, tasks, workers, preload=[__name__])) as results, \
             progress_bar(progress) as bar:
         task_id = bar.add_task("frames", total=len(items), info="")
         bar.advance(task_id, n_reused + len(failures))
@@ -357,26 +367,27 @@ def _build_locked(source: str | Path, out: Path, items: list[AudioItem],
             stats.update(frames[start:start + STATS_FRAMES])
 
     index_name = f"index-{uuid.uuid4().hex[:16]}.parquet"
-    with atomic_path(out / index_name) as tmp:
+    with out.writing(index_name) as tmp:
         pq.write_table(index, tmp, compression="zstd")
     failure_list = [ClipFailure(display_name(s), r) for s, r in sorted(failures.items())]
-    _write_failures(out / FAILURES, failure_list)
+    _write_failures(out, failure_list)
     n_frames = int(sum(entries[s]["n_frames"] for s in ordered))
     audio_seconds = float(sum(entries[s]["duration_s"] for s in ordered))
     marker = {
         "format": CACHE_FORMAT, "version": CACHE_VERSION, "timbrel": __version__,
         "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        "source": os.fsdecode(Path(source).absolute()), "index": index_name,
+        "source": _source_name(source), "index": index_name,
         "config": config.to_dict(), "frame_key": frame_key,
         "n_clips": len(ordered), "n_frames": n_frames, "audio_seconds": audio_seconds,
         "n_failed": len(failure_list), "band_stats": stats.to_dict(),
         "extra_columns": extra_columns,
     }
-    with atomic_open(out / MARKER, "w", encoding="utf-8") as fh:
-        json.dump(marker, fh, indent=1)
+    with out.writing(MARKER) as tmp:
+        tmp.write_text(json.dumps(marker, indent=1), encoding="utf-8")
     _collect_garbage(out, keep_index=index_name,
                      keep_shards={entries[s]["shard"] for s in ordered})
-    return CacheSummary(path=out, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
+    path = out.path if isinstance(out, store.LocalFolder) else out.location
+    return CacheSummary(path=path, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
                         n_frames=n_frames, audio_seconds=audio_seconds,
                         wall_seconds=time.perf_counter() - t0, failures=failure_list)
 
@@ -388,34 +399,44 @@ def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:
     return schema
 
 
-def _write_failures(path: Path, failures: list[ClipFailure]) -> None:
-    with atomic_open(path, "w", encoding="utf-8", newline="") as fh:
+def _item_path(item: AudioItem) -> str:
+    return str(item.path) if store.is_url(item.path) else os.fsdecode(item.path)
+
+
+def _source_name(source: str | Path) -> str:
+    return str(source) if store.is_url(source) else os.fsdecode(store.local(source).absolute())
+
+
+def _write_failures(out: store.Folder, failures: list[ClipFailure]) -> None:
+    with out.writing(FAILURES) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
         writer = csv.writer(fh)
         writer.writerow(["source", "reason"])
         for failure in failures:
             writer.writerow([failure.source, failure.reason])
 
 
-def _collect_garbage(out: Path, *, keep_index: str, keep_shards: set[str]) -> None:
-    for old in out.glob("index-*.parquet"):
-        if old.name != keep_index:
-            with contextlib.suppress(OSError):
-                old.unlink()
-    for shard in (out / "shards").glob("*.f32"):
-        if shard.stem not in keep_shards:
-            with contextlib.suppress(OSError):
-                shard.unlink()
-                shard.with_suffix(".json").unlink()
+def _collect_garbage(out: store.Folder, *, keep_index: str, keep_shards: set[str]) -> None:
+    for old in out.names("index-*.parquet"):
+        if old != keep_index:
+            out.remove(old)
+    for shard in out.names(f"{SHARDS}/*.f32"):
+        if shard[len(SHARDS) + 1:-len(".f32")] not in keep_shards:
+            out.remove(shard)
+            out.remove(shard[:-len(".f32")] + ".json")
 
 
 class FrameCache:
     """Read access to a complete frame cache.
 
-    Use :meth:`open`. Frames are memory-mapped, so a cache larger than RAM is fine.
+    Use :meth:`open`. Frames of a local cache are memory-mapped, so a cache larger than
+    RAM is fine. A cache in an object store is read by byte range, one clip at a time,
+    and the most recent clips are kept in memory up to :data:`STORE_CLIP_BYTES` bytes:
+    training streams its minibatches from the store without copying the cache.
 
     Attributes
     ----------
-    path : Path
+    path : Path or str
+        The folder (a URL for a cache in a store).
     index : pyarrow.Table
         One row per clip (see :data:`INDEX_SCHEMA`), plus manifest columns.
     config : Config
@@ -426,9 +447,11 @@ class FrameCache:
         Manifest columns carried through.
     """
 
-    def __init__(self, path: Path, *, index: pa.Table, n_mels: int,
+    def __init__(self, path: str | Path | store.Folder, *, index: pa.Table, n_mels: int,
                  marker: dict[str, Any] | None = None) -> None:
-        self.path = Path(path)
+        self.folder = path if isinstance(path, store.Folder) else store.folder(path)
+        self.path: Path | str = (self.folder.path if isinstance(self.folder, store.LocalFolder)
+                                 else self.folder.location)
         self.index = index
         self.n_mels = n_mels
         self.marker = marker or {}
@@ -436,6 +459,7 @@ class FrameCache:
         self._offsets = np.asarray(index.column("offset").to_numpy(), np.int64)
         self._counts = np.asarray(index.column("n_frames").to_numpy(), np.int64)
         self._maps: dict[str, np.memmap] = {}
+        self._recent: collections.OrderedDict[int, np.ndarray] = collections.OrderedDict()
 
     @classmethod
     def open(cls, path: str | Path) -> FrameCache:
@@ -447,15 +471,15 @@ class FrameCache:
             If the folder is missing, incomplete (no marker: a run never finished),
             of another format or version, or a shard is missing or short.
         """
-        path = Path(path)
-        marker_path = path / MARKER
-        if not path.is_dir():
+        folder = store.folder(path)
+        marker_path = folder.url(MARKER)
+        if isinstance(folder, store.LocalFolder) and not folder.path.is_dir():
             raise CacheError(f"{path}: no such frame cache folder")
-        if not marker_path.is_file():
+        if folder.size(MARKER) is None:
             raise CacheError(f"{path}: not a complete frame cache (no {MARKER}; "
                              "build it with the frames command)")
         try:
-            marker = json.loads(marker_path.read_text(encoding="utf-8"))
+            marker = json.loads(folder.read_bytes(MARKER).decode("utf-8"))
         except (OSError, ValueError) as exc:
             raise CacheError(f"{marker_path}: unreadable ({exc})") from None
         if marker.get("format") != CACHE_FORMAT:
@@ -464,11 +488,12 @@ class FrameCache:
             raise CacheError(f"{marker_path}: cache format version {marker['version']} is newer "
                              f"than this timbrel reads ({CACHE_VERSION}); upgrade timbrel")
         try:
-            index = pq.read_table(path / marker["index"])
+            index = pq.read_table(pa.BufferReader(folder.read_bytes(marker["index"])))
         except (OSError, pa.ArrowException) as exc:
-            raise CacheError(f"{path / marker['index']}: unreadable index ({exc})") from None
+            raise CacheError(f"{folder.url(marker['index'])}: unreadable index ({exc})"
+                             ) from None
         n_mels = int(marker["config"]["frontend"]["n_mels"])
-        cache = cls(path, index=index, n_mels=n_mels, marker=marker)
+        cache = cls(folder, index=index, n_mels=n_mels, marker=marker)
         cache._check_shards()
         return cache
 
@@ -477,17 +502,18 @@ class FrameCache:
         for shard, offset, count in zip(self._shards, self._offsets, self._counts, strict=True):
             need[shard] = max(need.get(shard, 0), int(offset + count))
         for shard, rows in need.items():
-            frames_path = self.path / "shards" / f"{shard}.f32"
-            if not frames_path.is_file():
+            frames_path = self.folder.url(f"{SHARDS}/{shard}.f32")
+            size = self.folder.size(f"{SHARDS}/{shard}.f32")
+            if size is None:
                 raise CacheError(f"{frames_path}: shard missing; rebuild the cache")
-            if frames_path.stat().st_size < rows * self.n_mels * 4:
+            if size < rows * self.n_mels * 4:
                 raise CacheError(f"{frames_path}: shard shorter than its index says; "
                                  "rebuild the cache")
 
     @property
     def config(self) -> Config:
         """The configuration the cache was made with."""
-        return Config.from_dict(self.marker["config"], source=str(self.path / MARKER))
+        return Config.from_dict(self.marker["config"], source=self.folder.url(MARKER))
 
     @property
     def band_stats(self) -> BandStats:
@@ -516,12 +542,31 @@ class FrameCache:
         """Log-mel frames of one clip, shape (n_frames, n_mels), float32, read-only memory map."""
         if not 0 <= clip < len(self._counts):
             raise ParameterError(f"clip = {clip} is outside [0, {len(self._counts)})")
+        if not isinstance(self.folder, store.LocalFolder):
+            return self._fetched(clip)
         shard = self._shards[clip]
         mm = self._maps.get(shard)
         if mm is None:
-            frames_path = self.path / "shards" / f"{shard}.f32"
+            frames_path = self.folder.file(f"{SHARDS}/{shard}.f32")
             rows = frames_path.stat().st_size // (4 * self.n_mels)
             mm = np.memmap(frames_path, dtype=np.float32, mode="r", shape=(rows, self.n_mels))
             self._maps[shard] = mm
         start = int(self._offsets[clip])
         return mm[start:start + int(self._counts[clip])]
+
+    def _fetched(self, clip: int) -> np.ndarray:
+        """A clip of a cache in a store: one byte-range read, kept among the recent ones."""
+        frames = self._recent.get(clip)
+        if frames is not None:
+            self._recent.move_to_end(clip)
+            return frames
+        row_bytes = 4 * self.n_mels
+        start = int(self._offsets[clip]) * row_bytes
+        stop = start + int(self._counts[clip]) * row_bytes
+        data = self.folder.read_range(f"{SHARDS}/{self._shards[clip]}.f32", start, stop)
+        frames = np.frombuffer(data, np.float32).reshape(-1, self.n_mels)
+        self._recent[clip] = frames
+        held = sum(f.nbytes for f in self._recent.values())
+        while held > STORE_CLIP_BYTES and len(self._recent) > 1:
+            held -= self._recent.popitem(last=False)[1].nbytes
+        return frames

@@ -88,6 +88,8 @@ def _root(
     """Learn per-frame features from sound."""
 
 
+SchedulerOption = Annotated[str | None, typer.Option(
+    "--scheduler", help="Dask scheduler address, tcp://HOST:PORT (needs the dask extra).")]
 ConfigOption = Annotated[Path | None, typer.Option(
     "--config", "-c", exists=True, dir_okay=False, readable=True,
     help="TOML configuration file (default: built-in defaults, as configs/default.toml).")]
@@ -107,11 +109,14 @@ def _err(text: str) -> None:
 
 @app.command("frames")
 def frames_command(
-    source: Annotated[Path, typer.Argument(help="Folder of audio files, or a manifest CSV.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Frame cache folder to write.")],
+    source: Annotated[str, typer.Argument(
+        help="Folder of audio files, or a manifest CSV (a path or a URL such as s3://...).")],
+    out: Annotated[str, typer.Option("--out", "-o",
+                                     help="Frame cache folder to write (a path or a URL).")],
     config: ConfigOption = None,
     overrides: SetOption = None,
     workers: WorkersOption = None,
+    scheduler: SchedulerOption = None,
     allow_outside: Annotated[bool, typer.Option(
         "--allow-outside", help="Accept manifest paths outside the manifest's folder.")] = False,
     strict: StrictOption = False,
@@ -122,8 +127,8 @@ def frames_command(
     from .config import load_config
 
     cfg = load_config(config, overrides=overrides or ())
-    summary = build_cache(source, out, config=cfg, workers=workers, allow_outside=allow_outside,
-                          progress=not quiet)
+    summary = build_cache(source, out, config=cfg, workers=workers, scheduler=scheduler,
+                          allow_outside=allow_outside, progress=not quiet)
     for failure in summary.failures:
         _err(f"failed: {failure.source}: {failure.reason}")
     typer.echo(summary.line())
@@ -165,8 +170,10 @@ class Compression(str, Enum):
 
 @app.command("fit")
 def fit_command(
-    cache: Annotated[Path, typer.Argument(help="Frame cache made by `timbrel frames`.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Model file to write (.npz).")],
+    cache: Annotated[str, typer.Argument(
+        help="Frame cache made by `timbrel frames` (a path or a URL).")],
+    out: Annotated[str, typer.Option("--out", "-o",
+                                     help="Model file to write (.npz; a path or a URL).")],
     config: ConfigOption = None,
     overrides: SetOption = None,
     n_hidden: Annotated[int | None, typer.Option("--n-hidden", min=1,
@@ -174,8 +181,8 @@ def fit_command(
     hidden: Annotated[Units | None, typer.Option("--hidden", help="Hidden-unit kind.")] = None,
     epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Training epochs.")] = None,
     seed: Annotated[int | None, typer.Option("--seed", help="Random seed.")] = None,
-    on: Annotated[Path | None, typer.Option(
-        "--on", exists=True, dir_okay=False,
+    on: Annotated[str | None, typer.Option(
+        "--on",
         help="A trained model to stack this one on (it learns from that model's features).")
     ] = None,
     resume: Annotated[bool, typer.Option(
@@ -199,7 +206,7 @@ def fit_command(
 
 @app.command("inspect")
 def inspect_command(
-    model: Annotated[Path, typer.Argument(help="Model file.")],
+    model: Annotated[str, typer.Argument(help="Model file (a path or a URL).")],
     as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON.")] = False,
     plots: Annotated[Path | None, typer.Option(
         "--plots", help="Folder to draw pictures of the model into (PNG).")] = None,
@@ -216,13 +223,14 @@ def inspect_command(
 
 @app.command("export")
 def export_command(
-    source: Annotated[Path, typer.Argument(help="Folder of audio, manifest CSV, or frame cache.")],
-    model: Annotated[Path, typer.Option("--model", "-m", help="Model file from `timbrel fit`.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Parquet dataset folder to write.")],
+    source: Annotated[str, typer.Argument(
+        help="Folder of audio, manifest CSV, or frame cache (a path or a URL).")],
+    model: Annotated[str, typer.Option("--model", "-m",
+                                       help="Model file from `timbrel fit` (a path or a URL).")],
+    out: Annotated[str, typer.Option("--out", "-o",
+                                     help="Parquet dataset folder to write (a path or a URL).")],
     workers: WorkersOption = None,
-    scheduler: Annotated[str | None, typer.Option(
-        "--scheduler", help="Dask scheduler address, tcp://HOST:PORT (needs the dask extra).")
-    ] = None,
+    scheduler: SchedulerOption = None,
     columns: Annotated[Columns, typer.Option(
         "--columns", help="vector: one features list column; wide: one column per unit.")
     ] = Columns.vector,
@@ -316,8 +324,9 @@ def probe_command(
 
 @app.command("score")
 def score_command(
-    model: Annotated[Path, typer.Argument(help="Model file from `timbrel fit`.")],
-    cache: Annotated[Path, typer.Argument(help="Frame cache to score (e.g. the training one).")],
+    model: Annotated[str, typer.Argument(help="Model file from `timbrel fit` (a path or a URL).")],
+    cache: Annotated[str, typer.Argument(
+        help="Frame cache to score, e.g. the training one (a path or a URL).")],
     chains: Annotated[int, typer.Option("--chains", min=2,
                                         help="AIS chains (independent runs).")] = 100,
     temperatures: Annotated[int, typer.Option(

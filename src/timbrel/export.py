@@ -27,6 +27,7 @@ import functools
 import hashlib
 import json
 import os
+import posixpath
 import time
 import uuid
 from collections.abc import Callable, Iterator, Sequence
@@ -37,21 +38,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import __version__
-from ._atomic import (
-    LOCK_NAME,
-    TEMP_SUFFIX,
-    atomic_open,
-    atomic_path,
-    folder_lock,
-    make_folder,
-    os_reason,
-    remove_stale_temporaries,
-)
+from . import __version__, store
+from ._atomic import LOCK_NAME, TEMP_SUFFIX, os_reason
 from ._errors import AudioReadError, ExportError, OutputError, ParameterError
 from ._progress import progress_bar
 from ._threads import single_blas_thread
-from ._workers import Interrupted, even_chunks, task_results
+from ._workers import Interrupted, dask_results, even_chunks, task_results
 from .audio import AudioItem, counted_blocks, discover, display_name, read_blocks, read_info
 from .cache import MARKER as CACHE_MARKER
 from .cache import FrameCache
@@ -148,7 +140,7 @@ def clip_schema(n_hidden: int, pools: Sequence[str], extra_columns: Sequence[str
 class ExportSummary:
     """What :func:`export` did."""
 
-    path: Path
+    path: Path | str
     n_files: int
     n_clips: int
     n_skipped: int
@@ -166,7 +158,7 @@ class ExportSummary:
                 f"done), {self.n_frames} frames, {self.audio_seconds / 3600:.3f} h of audio in "
                 f"{self.wall_seconds:.1f} s ({speed:.0f}x realtime)")
         if self.failures:
-            text += f"; {len(self.failures)} FAILED (see {self.path / FAILURES})"
+            text += f"; {len(self.failures)} FAILED (see {store.join(str(self.path), FAILURES)})"
         return text
 
 
@@ -207,21 +199,23 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                           events=task["events"], metadata=metadata)
     rows_per_group = max(1024, ROW_GROUP_BYTES // (4 * n_hidden + 64))
     group = np.empty((rows_per_group, n_hidden), np.float32)
-    out = Path(task["out"])
-    part = out / f"part-{task['id']}.parquet"
+    out = store.folder(task["out"])
+    part_name = f"part-{task['id']}.parquet"
+    part = out.url(part_name)
     cache = FrameCache.open(task["cache"]) if task.get("cache") else None
     done: list[dict[str, Any]] = []
     failures: list[tuple[str, str]] = []
     clip_rows: list[dict[str, Any]] = []
     still_ours = functools.partial(_publishing, out, task.get("run"))
-    with atomic_path(part, guard=still_ours) as tmp:
+    with out.writing(part_name, guard=still_ours) as tmp:
         writer = pq.ParquetWriter(tmp, schema, **_write_options(schema, task["compression"]))
         try:
             for job in task["jobs"]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
                                          group, task, part)
-                except (AudioReadError, ParameterError, OSError, ValueError, RuntimeError) as exc:
+                except (AudioReadError, ParameterError, store.StoreError, OSError, ValueError,
+                        RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)
                     failures.append((job["source"], reason))
                     continue
@@ -238,7 +232,7 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
         finally:
             writer.close()
         if pools:
-            _write_clip_part(out / CLIPS_DIR / f"part-{task['id']}.parquet", clip_rows,
+            _write_clip_part(out, f"{CLIPS_DIR}/{part_name}", clip_rows,
                              n_hidden, pools, extra_columns, metadata, task["compression"],
                              guard=still_ours)
     return {"id": task["id"], "done": done, "failures": failures}
@@ -247,25 +241,19 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
 PUBLISH_LOCK = ".publish"
 
 
-@contextlib.contextmanager
-def _publish_lock(out: Path) -> Iterator[None]:
+def _publish_lock(out: store.Folder) -> contextlib.AbstractContextManager[None]:
     """Hold ``out/.publish`` (a blocking ``flock``) for the block.
 
     A task publishes its parts under it, and the driver takes it to change the run record
     and for its final clean-up, so a task's check of the run and its rename are one step.
+    A store has no such lock: there the check and the upload are two steps, and a part
+    an old run's task uploads in between is dropped by the new run's final clean-up.
     """
-    import fcntl
-
-    with open(out / PUBLISH_LOCK, "a") as fh:
-        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
-        try:
-            yield
-        finally:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+    return out.short_lock(PUBLISH_LOCK)
 
 
 @contextlib.contextmanager
-def _publishing(out: Path, run: str | None) -> Iterator[None]:
+def _publishing(out: store.Folder, run: str | None) -> Iterator[None]:
     """Publish a part only for the run that owns the folder now.
 
     A Dask cluster finishes the tasks of a client that was killed; when the client is
@@ -275,20 +263,29 @@ def _publishing(out: Path, run: str | None) -> Iterator[None]:
     """
     with _publish_lock(out):
         try:
-            current = json.loads((out / RECORD).read_text(encoding="utf-8")).get("run")
-        except (OSError, ValueError):
+            current = json.loads(out.read_bytes(RECORD).decode("utf-8")).get("run")
+        except (OSError, ValueError, store.StoreError):
             current = None
         if current != run:
-            raise ExportError(f"{out}: a later export run took over this folder; "
+            raise ExportError(f"{out.location}: a later export run took over this folder; "
                               "this task's part is discarded")
         yield
 
 
 def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                  cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
-                 group: np.ndarray, task: dict[str, Any], part: Path) -> dict[str, Any]:
+                 group: np.ndarray, task: dict[str, Any], part: str) -> dict[str, Any]:
     """Features of one clip into ``writer``, in row groups of ``len(group)`` rows filled
     in ``group`` (n_rows, n_features), so memory stays flat whatever the clip's length."""
+    with contextlib.ExitStack() as stack:
+        return _export_frames(job, pipe, frontend, cache, writer, schema, group, task, part,
+                              stack)
+
+
+def _export_frames(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
+                   cache: FrameCache | None, writer: pq.ParquetWriter, schema: pa.Schema,
+                   group: np.ndarray, task: dict[str, Any], part: str,
+                   stack: contextlib.ExitStack) -> dict[str, Any]:
     fe_cfg = frontend.config
     n_samples = [0]  # decoded samples, for the reason a clip too short gives
     if cache is not None:
@@ -298,7 +295,7 @@ def _export_clip(job: dict[str, Any], pipe: FeaturePipeline, frontend: FrontEnd,
                                         for a in range(0, len(frames_all), 8192))
         duration = float(job["duration_s"])
     else:
-        path = Path(job["path"])
+        path = stack.enter_context(store.local_copy(job["path"]))  # fetched if a URL
         duration = read_info(path).duration
         audio = read_blocks(path, sr=fe_cfg.sample_rate, channel=fe_cfg.channel)
         blocks = frontend.stream(counted_blocks(audio, n_samples), fe_cfg.sample_rate)
@@ -410,7 +407,7 @@ def _write_options(schema: pa.Schema, compression: str = COMPRESSION) -> dict[st
             "use_dictionary": strings, "write_statistics": filterable}
 
 
-def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
+def _write_clip_part(out: store.Folder, name: str, rows: list[dict[str, Any]], n_hidden: int,
                      pools: Sequence[str], extra_columns: Sequence[str],
                      metadata: dict[bytes, bytes], compression: str, *,
                      guard: Callable[[], contextlib.AbstractContextManager[object]] | None = None
@@ -426,22 +423,23 @@ def _write_clip_part(path: Path, rows: list[dict[str, Any]], n_hidden: int,
         arrays.append(pa.FixedSizeListArray.from_arrays(_numeric_array(flat),
                                                         type=_vector_type(n_hidden)))
     arrays.extend(_string_array([r[c] for r in rows]) for c in extra_columns)
-    with atomic_path(path, guard=guard) as tmp:
+    with out.writing(name, guard=guard) as tmp:
         pq.write_table(pa.Table.from_arrays(arrays, schema=schema), tmp,
                        **_write_options(schema, compression))
 
 
 # ----------------------------------------------------------------------------- driver side
 
-def _finished_parts(out: Path, checksum: str) -> tuple[set[str], set[str], list[Path]]:
+def _finished_parts(out: store.Folder, checksum: str) -> tuple[set[str], set[str], list[str]]:
     """Sources already in complete parts of this model, the names of those parts, and
     parts of another model."""
     done: set[str] = set()
     names: set[str] = set()
-    foreign: list[Path] = []
-    for part in sorted(out.glob("part-*.parquet")):
+    foreign: list[str] = []
+    for part in out.names("part-*.parquet"):
         try:
-            meta = pq.read_metadata(part).metadata or {}
+            with out.reader(part) as fh:
+                meta = pq.read_metadata(fh).metadata or {}
             info = json.loads(meta[METADATA_KEY])
             failed = json.loads(meta.get(FAILED_KEY, b"{}"))
         except (OSError, KeyError, ValueError, pa.ArrowException):
@@ -450,7 +448,7 @@ def _finished_parts(out: Path, checksum: str) -> tuple[set[str], set[str], list[
         if info.get("model_checksum") != checksum:
             foreign.append(part)
         else:
-            names.add(part.name)
+            names.add(part)
             done.update(src for src in info.get("sources", []) if src not in failed)
     return done, names, foreign
 
@@ -535,20 +533,19 @@ def export(
                "n_features": pipe.n_features(layer), "events": events is not None}
     annotations = (Path(events), *read_events(events)) if events is not None else None
     _check_config(config, pipe, model)
-    out = Path(out)
-    if out.exists() and not out.is_dir():
+    dest = store.folder(out)
+    if isinstance(dest, store.LocalFolder) and dest.path.exists() and not dest.path.is_dir():
         raise ParameterError(f"{out}: output exists and is not a folder")
-    if out.is_dir():
-        _check_only_ours(out)  # before the lock file, so a refusal leaves the folder as it was
-    make_folder(out)
-    with folder_lock(out, error=ExportError, busy="another export is writing into this "
-                     "folder (lock held); wait for it or choose another --out"):
+    _check_only_ours(dest)  # before the lock file, so a refusal leaves the folder as it was
+    dest.prepare()
+    with dest.lock(error=ExportError, busy="another export is writing into this "
+                   "folder (lock held); wait for it or choose another --out"):
         try:
-            return _export_locked(source, model, out, pipe, options, annotations,
+            return _export_locked(source, model, dest, pipe, options, annotations,
                                   workers=workers, scheduler=scheduler, overwrite=overwrite,
                                   allow_outside=allow_outside, progress=progress, t0=t0)
         except KeyboardInterrupt:
-            raise _interrupted(out, pipe.checksum) from None
+            raise _interrupted(dest, pipe.checksum) from None
 
 
 def _checked_options(columns: str, compression: str, pool: Sequence[str]) -> list[str]:
@@ -573,7 +570,8 @@ def _check_config(config: Config | None, pipe: FeaturePipeline, model: str | Pat
                           "was trained")
 
 
-def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: FeaturePipeline,
+def _export_locked(source: str | Path, model: str | Path, out: store.Folder,
+                   pipe: FeaturePipeline,
                    options: dict[str, Any],
                    annotations: tuple[Path, list[Event], list[EventProblem]] | None, *,
                    workers: int | None, scheduler: str | None, overwrite: bool,
@@ -583,7 +581,7 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
                                                         allow_outside=allow_outside)
     problems = _attach_events(jobs, annotations) if annotations is not None else []
-    metadata = {"model_checksum": pipe.checksum, "model": os.fsdecode(Path(model).absolute()),
+    metadata = {"model_checksum": pipe.checksum, "model": _absolute(model),
                 "hidden": pipe.top.hidden, "n_hidden": options["n_features"],
                 "layer": options["layer"], "frontend": dataclasses.asdict(pipe.config.frontend),
                 "config": pipe.config.to_dict(), "timbrel": __version__,
@@ -599,7 +597,7 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     todo = [j for j in jobs if j["source"] not in done]
     n_workers = max(1, workers or os.cpu_count() or 1)
     tasks = [{**options, "id": _task_id(pipe.checksum, chunk), "jobs": chunk,
-              "model": str(model), "checksum": pipe.checksum, "out": str(out),
+              "model": str(model), "checksum": pipe.checksum, "out": out.location,
               "extra_columns": extra_columns, "metadata": metadata, "cache": cache_path,
               "run": run}
              for chunk in even_chunks(todo, n_workers, most=FILES_PER_TASK)]
@@ -615,7 +613,8 @@ def _export_locked(source: str | Path, model: str | Path, out: Path, pipe: Featu
     finished, _, _ = _finished_parts(out, pipe.checksum)
     record.update(complete=True, n_sources=len(finished), finished_sources=sorted(finished))
     _write_record(out, record)
-    return ExportSummary(path=out, n_files=len(jobs), n_clips=len(todo) - len(failures),
+    path = out.path if isinstance(out, store.LocalFolder) else out.location
+    return ExportSummary(path=path, n_files=len(jobs), n_clips=len(todo) - len(failures),
                          n_skipped=len(jobs) - len(todo), n_frames=n_frames,
                          audio_seconds=seconds, wall_seconds=time.perf_counter() - t0,
                          failures=sorted(failures.items()), event_problems=problems)
@@ -626,27 +625,26 @@ def _attach_events(jobs: list[dict[str, Any]],
     """Give each job its clip's events; the annotation lines that cannot be used, as text."""
     table, events, problems = annotations
     durations = {j["source"]: float(j["duration_s"]) if "duration_s" in j
-                 else read_info(j["path"]).duration for j in jobs}
+                 else _duration(j["path"]) for j in jobs}
     by_clip, more = check_events(events, durations)
     for job in jobs:
         job["events"] = [(e.onset, e.offset, e.label) for e in by_clip.get(job["source"], [])]
     return [p.text(table) for p in sorted([*problems, *more], key=lambda p: p.line)]
 
 
-def _prepare_folder(out: Path, pipe: FeaturePipeline, options: dict[str, Any], *,
+def _prepare_folder(out: store.Folder, pipe: FeaturePipeline, options: dict[str, Any], *,
                     overwrite: bool) -> tuple[set[str], set[str]]:
     """Clear or check what ``out`` holds; return the sources and part names already done."""
     _check_only_ours(out)
     if overwrite:
         _clear(out)
     if options["pools"]:
-        make_folder(out / CLIPS_DIR)
-    remove_stale_temporaries(out)
-    remove_stale_temporaries(out / CLIPS_DIR)
+        out.prepare(CLIPS_DIR)
+    out.clean_temporaries(CLIPS_DIR)
     _drop_orphan_clip_parts(out)
     record = _read_record(out)
     if record and record.get("model_checksum") != pipe.checksum:
-        raise ExportError(f"{out}: holds a dataset of another model "
+        raise ExportError(f"{out.location}: holds a dataset of another model "
                           f"({record.get('model', '?')}); pass --overwrite to replace it")
     if record:
         # records written before the options were named so say "layout" for the columns
@@ -657,11 +655,11 @@ def _prepare_folder(out: Path, pipe: FeaturePipeline, options: dict[str, Any], *
                 "layer": options["layer"], "events": options["events"]}
         if theirs != ours:
             differ = ", ".join(f"{k} {theirs[k]!r}" for k in ours if theirs[k] != ours[k])
-            raise ExportError(f"{out}: holds a dataset written with {differ}; use the same "
-                              "options or --overwrite")
+            raise ExportError(f"{out.location}: holds a dataset written with {differ}; use "
+                              "the same options or --overwrite")
     done, done_parts, foreign = _finished_parts(out, pipe.checksum)
     if foreign:
-        raise ExportError(f"{out}: holds part files of another model ({foreign[0].name}); "
+        raise ExportError(f"{out.location}: holds part files of another model ({foreign[0]}); "
                           "pass --overwrite to replace them")
     return done, done_parts
 
@@ -674,7 +672,8 @@ def _run_tasks(tasks: list[dict[str, Any]], *, scheduler: str | None, workers: i
     n_frames = 0
     seconds = 0.0
     # the local pool starts before the progress bar's thread, so it can be forked
-    with (_dask_results(tasks, scheduler) if scheduler
+    with (dask_results(_export_task, tasks, scheduler, key=lambda t: f"timbrel-export-{t['id']}",
+                       error=ExportError) if scheduler
           else task_results(_export_task, tasks, workers, preload=[__name__])) as results, \
             progress_bar(progress) as bar:
         task_id = bar.add_task("export", total=n_jobs, info="")
@@ -691,7 +690,7 @@ def _run_tasks(tasks: list[dict[str, Any]], *, scheduler: str | None, workers: i
     return n_frames, seconds, failures
 
 
-def _drop_parts_of_other_runs(out: Path, *, keep: set[str]) -> None:
+def _drop_parts_of_other_runs(out: store.Folder, *, keep: set[str]) -> None:
     """Delete parts neither done before this run nor written by it, and temporaries.
 
     Such a part comes from a task of an earlier run that was still running when this
@@ -700,36 +699,55 @@ def _drop_parts_of_other_runs(out: Path, *, keep: set[str]) -> None:
     clip-table part goes too when its frame part was never published (the old task
     was refused, or its temporary removed, between the two).
     """
-    for part in [*out.glob("part-*.parquet"), *(out / CLIPS_DIR).glob("part-*.parquet")]:
-        if part.name not in keep:
-            with contextlib.suppress(OSError):
-                part.unlink()
-    remove_stale_temporaries(out)
-    remove_stale_temporaries(out / CLIPS_DIR)
+    for part in [*out.names("part-*.parquet"), *out.names(f"{CLIPS_DIR}/part-*.parquet")]:
+        if posixpath.basename(part) not in keep:
+            out.remove(part)
+    out.clean_temporaries(CLIPS_DIR)
 
 
-def _interrupted(out: Path, checksum: str) -> Interrupted:
+def _interrupted(out: store.Folder, checksum: str) -> Interrupted:
     """What a stopped run leaves: finished parts kept, temporaries removed.
 
     The local workers have already ended (:func:`timbrel._workers.task_results`)."""
-    remove_stale_temporaries(out)
-    remove_stale_temporaries(out / CLIPS_DIR)
+    out.clean_temporaries(CLIPS_DIR)
     _drop_orphan_clip_parts(out)
     done, parts, _ = _finished_parts(out, checksum)
-    return Interrupted(f"{out}: interrupted; {len(done)} files in {len(parts)} finished "
+    return Interrupted(f"{out.location}: interrupted; {len(done)} files in {len(parts)} finished "
                        "parts are kept, partial parts removed; run the same command again "
                        "to continue")
 
 
-def _audio_root(source: Path) -> str:
+def _audio_root(source: str | Path) -> str:
     """Folder that clip names are relative to: the folder itself, or a manifest's folder."""
-    return os.fsdecode((source if source.is_dir() else source.parent).absolute())
+    if store.is_url(source):
+        text = str(source).rstrip("/")
+        return store.parent(text) if text.lower().endswith(".csv") else text
+    path = store.local(source)
+    return os.fsdecode((path if path.is_dir() else path.parent).absolute())
+
+
+def _absolute(path: str | Path) -> str:
+    """A path made absolute, or a URL as given."""
+    return str(path) if store.is_url(path) else os.fsdecode(store.local(path).absolute())
+
+
+def _duration(path: str | Path) -> float:
+    """Seconds of audio of a file (fetched first if a URL)."""
+    with store.local_copy(path) as local:
+        return read_info(local).duration
+
+
+def _is_cache(source: str | Path) -> bool:
+    if store.is_url(source):
+        return store.exists(store.join(str(source), CACHE_MARKER))
+    src = store.local(source)
+    return src.is_dir() and (src / CACHE_MARKER).is_file()
 
 
 def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
           ) -> tuple[list[dict[str, Any]], list[str], str | None, str]:
-    src = Path(source)
-    if src.is_dir() and (src / CACHE_MARKER).is_file():
+    src = source if store.is_url(source) else store.local(source)
+    if _is_cache(src):
         cache = FrameCache.open(src)
         diffs = pipe.config.frontend.frame_differences(cache.config.frontend, ours="model",
                                                        theirs="cache")
@@ -741,13 +759,14 @@ def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
         table = cache.index.to_pylist()
         jobs = [{"source": row["source"], "clip": i, "duration_s": row["duration_s"],
                  "extra": {c: row.get(c) or "" for c in extra}} for i, row in enumerate(table)]
-        return jobs, extra, str(src.absolute()), _audio_root(Path(cache.marker["source"]))
+        return jobs, extra, _absolute(src), _audio_root(cache.marker["source"])
     items, extra = discover(src, allow_outside=allow_outside)
     return [_job(item) for item in items], extra, None, _audio_root(src)
 
 
 def _job(item: AudioItem) -> dict[str, Any]:
-    return {"source": item.source, "path": os.fsdecode(item.path), "extra": dict(item.extra)}
+    path = str(item.path) if store.is_url(item.path) else os.fsdecode(item.path)
+    return {"source": item.source, "path": path, "extra": dict(item.extra)}
 
 
 def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
@@ -757,49 +776,31 @@ def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:
     return h.hexdigest()[:16]
 
 
-@contextlib.contextmanager
-def _dask_results(tasks: list[dict[str, Any]], address: str
-                  ) -> Iterator[Iterator[dict[str, Any]]]:
-    try:
-        from distributed import Client, as_completed
-    except ImportError:
-        raise ExportError("--scheduler needs the dask extra: pip install 'timbrel[dask]'") from None
-    try:
-        client = Client(address, timeout="20s")
-    except (OSError, TimeoutError) as exc:
-        raise ExportError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
-    with client:
-        futures = [client.submit(_export_task, task, key=f"timbrel-export-{task['id']}",
-                                 pure=False) for task in tasks]
-        yield (future.result() for future in as_completed(futures))
-
-
-def _drop_orphan_clip_parts(out: Path) -> None:
+def _drop_orphan_clip_parts(out: store.Folder) -> None:
     # a clip part is published just before its frame part; one without a frame part is
     # from a task killed in between, and that task's clips will be exported again
-    for clip_part in (out / CLIPS_DIR).glob("part-*.parquet"):
-        if not (out / clip_part.name).is_file():
-            clip_part.unlink()
+    for clip_part in out.names(f"{CLIPS_DIR}/part-*.parquet"):
+        if out.size(posixpath.basename(clip_part)) is None:
+            out.remove(clip_part)
 
 
-def _read_record(out: Path) -> dict[str, Any] | None:
-    path = out / RECORD
-    if not path.is_file():
+def _read_record(out: store.Folder) -> dict[str, Any] | None:
+    if out.size(RECORD) is None:
         return None
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
+        return json.loads(out.read_bytes(RECORD).decode("utf-8"))
     except (OSError, ValueError):
-        raise ExportError(f"{path}: unreadable run record; pass --overwrite to start "
-                          "over") from None
+        raise ExportError(f"{out.url(RECORD)}: unreadable run record; pass --overwrite to "
+                          "start over") from None
 
 
-def _write_record(out: Path, record: dict[str, Any]) -> None:
-    with atomic_open(out / RECORD, "w", encoding="utf-8") as fh:
-        json.dump(record, fh, indent=1)
+def _write_record(out: store.Folder, record: dict[str, Any]) -> None:
+    with out.writing(RECORD) as tmp:
+        tmp.write_text(json.dumps(record, indent=1), encoding="utf-8")
 
 
-def _write_failures(out: Path, failures: dict[str, str]) -> None:
-    with atomic_open(out / FAILURES, "w", encoding="utf-8", newline="") as fh:
+def _write_failures(out: store.Folder, failures: dict[str, str]) -> None:
+    with out.writing(FAILURES) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
         writer = csv.writer(fh)
         writer.writerow(["source", "reason"])
         for src, reason in sorted(failures.items()):
@@ -813,28 +814,27 @@ def _ours(name: str) -> bool:
             or (name.startswith(".") and name.endswith(TEMP_SUFFIX)))
 
 
-def _check_only_ours(out: Path) -> None:
+def _check_only_ours(out: store.Folder) -> None:
     """Refuse a folder holding files timbrel did not write: Parquet readers would take them
     for part of the dataset, and --overwrite must never delete them."""
     # names starting with "." or "_" are skipped by dataset readers and left alone
-    foreign = sorted(e.name for e in out.iterdir()
-                     if not _ours(e.name) and not e.name.startswith((".", "_")))
+    foreign = [name for name in out.entries()
+               if not _ours(name) and not name.startswith((".", "_"))]
     if foreign:
         shown = ", ".join(foreign[:3]) + (", ..." if len(foreign) > 3 else "")
-        raise ExportError(f"{out}: holds files that are not part of a timbrel dataset "
+        raise ExportError(f"{out.location}: holds files that are not part of a timbrel dataset "
                           f"({shown}); choose an empty or new folder")
 
 
-def _clear(out: Path) -> None:
+def _clear(out: store.Folder) -> None:
     """Delete the dataset in ``out``: only the entries timbrel writes."""
-    for entry in out.iterdir():
-        if entry.name == LOCK_NAME or not _ours(entry.name):
-            continue
-        if entry.name == CLIPS_DIR and entry.is_dir():
-            for part in entry.glob("part-*.parquet"):
-                part.unlink()
-            remove_stale_temporaries(entry)
-            with contextlib.suppress(OSError):
-                entry.rmdir()  # kept if something else is in it
-        elif entry.is_file():
-            entry.unlink()
+    for part in out.names(f"{CLIPS_DIR}/part-*.parquet"):
+        out.remove(part)
+    out.clean_temporaries(CLIPS_DIR)
+    for name in out.entries():
+        if name == CLIPS_DIR:
+            if isinstance(out, store.LocalFolder):
+                with contextlib.suppress(OSError):
+                    out.file(CLIPS_DIR).rmdir()  # kept if something else is in it
+        elif name != LOCK_NAME and _ours(name) and out.size(name) is not None:
+            out.remove(name)

@@ -11,7 +11,11 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import hashlib
 import math
+import os
+import posixpath
+import shutil
 import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping
@@ -20,7 +24,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from . import __version__
+from . import __version__, store
 from ._atomic import atomic_open, make_folder, remove_stale_temporaries
 from ._errors import CacheError, ConfigError, ModelFileError, ParameterError, TimbrelError
 from ._progress import progress_bar
@@ -88,8 +92,8 @@ def model_from_config(config: Config, *, layout: tuple[int, int] | None = None) 
 class TrainResult:
     """What :func:`train` produced."""
 
-    model_path: Path
-    history_path: Path
+    model_path: Path | str
+    history_path: Path | str
     history: list[dict[str, Any]]
     n_train_clips: int
     n_validation_clips: int
@@ -121,10 +125,14 @@ def train(
     Parameters
     ----------
     cache_path : str or Path
-        A complete frame cache (see :func:`timbrel.cache.build_cache`).
+        A complete frame cache (see :func:`timbrel.cache.build_cache`), local or a URL
+        (a cache in a store is streamed by byte range, see :class:`timbrel.cache.FrameCache`).
     out : str or Path
         Model file to write (``.npz``). Beside it: ``OUT.history.csv`` (one row per
         epoch) and ``OUT.checkpoint.npz`` (the full training state after the last epoch).
+        For a URL (``s3://...``) the three are written to a local staging folder (see
+        :func:`staging_path`) while training, and the history, then the model, are
+        uploaded at the end; ``resume`` continues from the staged checkpoint.
     config : Config, optional
         Model and training settings; its front-end frame settings must match the
         cache's (only ``context`` may differ). Default: the cache's own configuration.
@@ -154,6 +162,9 @@ def train(
     ------
     CacheError, ConfigError, DivergenceError, ModelFileError
     """
+    if store.is_url(out):
+        return _train_to_store(cache_path, str(out), config=config, overrides=overrides,
+                               model=model, on=on, resume=resume, progress=progress, log=log)
     t0 = time.perf_counter()
     say = log or (lambda text: None)
     out = _prepare_output(Path(out))
@@ -194,6 +205,28 @@ def train(
                        n_train_clips=len(train_batches.clips),
                        n_validation_clips=len(val_batches.clips),
                        wall_seconds=time.perf_counter() - t0)
+
+
+def staging_path(url: str) -> Path:
+    """The local file a model bound for ``url`` is trained into:
+    ``$TIMBREL_STAGING`` (default ``~/.cache/timbrel/staging``)/<hash of the URL>/<name>."""
+    root = Path(os.environ.get("TIMBREL_STAGING", "~/.cache/timbrel/staging")).expanduser()
+    digest = hashlib.sha256(url.encode("utf-8")).hexdigest()[:16]
+    return root / digest / posixpath.basename(url.rstrip("/"))
+
+
+def _train_to_store(cache_path: str | Path, url: str, **options: Any) -> TrainResult:
+    """:func:`train` into a staging file, then the history and the model uploaded (the
+    model last: a model in the store is always complete)."""
+    store.folder(store.parent(url)).prepare()
+    local = staging_path(url)
+    result = train(cache_path, local, **options)
+    for name in (history_path(local).name, local.name):
+        with store.writing_file(store.join(store.parent(url), name)) as tmp:
+            shutil.copyfile(local.parent / name, tmp)
+    return dataclasses.replace(result, model_path=url,
+                               history_path=store.join(store.parent(url),
+                                                       history_path(local).name))
 
 
 class _Batches(Protocol):
@@ -371,7 +404,8 @@ def _metadata(config: Config, cache: FrameCache, cache_path: str | Path,
         "timbrel": __version__,
         "config": config.to_dict(),
         "layout": [fe.n_positions, fe.n_mels],
-        "cache": {"path": str(Path(cache_path).absolute()), "n_clips": len(cache),
+        "cache": {"path": (str(cache_path) if store.is_url(cache_path)
+                           else str(Path(cache_path).absolute())), "n_clips": len(cache),
                   "n_frames": cache.n_frames, "n_train_clips": len(train_batches.clips),
                   "n_validation_clips": len(val_batches.clips),
                   "audio_seconds": cache.marker.get("audio_seconds")},

@@ -23,6 +23,7 @@ import numpy as np
 
 from .._atomic import atomic_path
 from .._errors import ModelFileError, ParameterError
+from ..store import exists, is_url, local_copy
 from ._kernels import F32
 from ._params import is_int
 
@@ -148,7 +149,10 @@ def refuse(path: Path, reason: str) -> ModelFileError:
 
 def read_model_archive(path: str | os.PathLike[str]) -> ModelArchive:
     """Read and verify a model file's layout, arrays and checksum; refuses what
-    :func:`timbrel.model.read_model_file` lists, hyperparameters aside."""
+    :func:`timbrel.model.read_model_file` lists, hyperparameters aside. ``path`` may be
+    a URL of an object store (:mod:`timbrel.store`): the file is fetched first."""
+    if is_url(path):
+        return _read_remote(os.fspath(path))
     path = Path(path)
     if not path.exists():
         raise refuse(path, "no such model file")
@@ -173,6 +177,16 @@ def read_model_archive(path: str | os.PathLike[str]) -> ModelArchive:
     except Exception as exc:  # numpy's .npy header parser (ast) and zip
         # reader raise SyntaxError, TypeError, MemoryError, ... on a damaged file
         raise refuse(path, f"unreadable ({type(exc).__name__}: {exc})") from None
+
+
+def _read_remote(url: str) -> ModelArchive:
+    if not exists(url):
+        raise ModelFileError(f"{url}: no such model file")
+    with local_copy(url) as tmp:
+        try:
+            return read_model_archive(tmp)
+        except ModelFileError as exc:
+            raise ModelFileError(str(exc).replace(os.fspath(tmp), url)) from None
 
 
 def _load_member(path: Path, archive: Any, name: str) -> np.ndarray:
