@@ -14,7 +14,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 BENCHES = ["bench_startup", "bench_frontend", "bench_training", "bench_export", "bench_scale",
-           "bench_stream", "bench_probe", "bench_quality"]
+           "bench_stream", "bench_cluster", "bench_probe", "bench_quality"]
 # keeps the whole run under about ten minutes on 2 cores (float64 scikit-learn is
 # informative only; run bench_training.py alone for it)
 EXTRA_ARGS = {"bench_training": ["--repeats", "3", "--no-float64", "--profile"]}
@@ -101,6 +101,14 @@ def _targets(results: dict) -> list[tuple[str, str, str, bool]]:
                      f"{s.get('two_workers_speedup_short')}x); "
                      f"machine's own 2-process {s['machine_reference_speedup']:.2f}x",
                      r["two_workers_met"]))
+    if "bench_cluster" in results:
+        r = results["bench_cluster"]
+        for stage in ("frames", "export"):
+            rows.append((f"{stage} on 2 Dask workers faster than on 1",
+                         f"{r[f'{stage}_speedup']:.2f}x",
+                         f"1 worker, same rounds; store to store "
+                         f"{r[f'{stage}_store_over_local']:.2f}x the time of local disk",
+                         r[f"{stage}_speedup"] > 1.0))
     if "bench_probe" in results and "runs" in results["bench_probe"]:
         r = results["bench_probe"]
         seeds = f"mean of seeds {','.join(map(str, r['seeds']))}"
