@@ -191,9 +191,8 @@ def list_files(url: str) -> list[str]:
     fs, root = filesystem(url)
     with errors(url, "list"):
         found = fs.find(root)
-    protocol = url.split("://", 1)[0]
-    return sorted(f"{protocol}://{p.lstrip('/')}" if protocol != "memory" else f"memory://{p}"
-                  for p in found)
+    base, root = url.rstrip("/"), root.rstrip("/")
+    return sorted(base + p[len(root):] for p in found if p.startswith(root + "/"))
 
 
 def read_bytes(url: str) -> bytes:
@@ -425,6 +424,8 @@ class StoreFolder(Folder):
     def size(self, name: str) -> int | None:
         try:
             with errors(self.url(name), "read"):
+                # another process may have written it since this one last listed
+                self.fs.invalidate_cache(posixpath.dirname(self._key(name)))
                 return int(self.fs.size(self._key(name)))
         except StoreError as exc:
             if str(exc).endswith("no such object"):
