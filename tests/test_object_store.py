@@ -24,6 +24,7 @@ import pytest
 import _s3server
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
+from timbrel.evaluation import probe
 from timbrel.export import export
 from timbrel.model import read_model_file
 from timbrel.store import StoreError
@@ -131,6 +132,11 @@ def test_the_store_chain_on_a_cluster_equals_the_local_chain(s3, words, cluster,
     assert clips.num_rows == N_CLIPS
     record = json.loads(objects["ds/_export.json"])
     assert record["complete"] and record["n_sources"] == N_CLIPS
+    # the probe reads the dataset and (for its MFCC peer) the audio from the store
+    there, here = (probe(ds, baselines=["mfcc"], label="label", split_column="split")
+                   for ds in (f"{base}/ds", local / "ds"))
+    assert [(s.name, s.accuracy) for s in there.scores] == [
+        (s.name, s.accuracy) for s in here.scores]
 
 
 def test_a_rerun_reuses_what_the_store_holds(s3, words, tmp_path):

@@ -548,5 +548,6 @@ def load(path: str | Path, *, sr: int, channel: int = -1) -> np.ndarray:
     -------
     y : np.ndarray, shape (n_samples,), float32
     """
-    blocks = list(read_blocks(path, sr=sr, channel=channel))
+    with store.local_copy(path) as file:  # fetched first if a URL
+        blocks = list(read_blocks(file, sr=sr, channel=channel))
     return np.concatenate(blocks) if blocks else np.zeros(0, np.float32)

@@ -276,8 +276,8 @@ def export_command(
 
 @app.command("probe")
 def probe_command(
-    dataset: Annotated[Path, typer.Argument(exists=True, file_okay=False,
-                                            help="Dataset folder from `timbrel export`.")],
+    dataset: Annotated[str, typer.Argument(
+        help="Dataset folder from `timbrel export` (a path or a URL).")],
     label: Annotated[str, typer.Option("--label", "-l", help="Column with each clip's class.")
                      ] = "label",
     split_column: Annotated[str, typer.Option(
@@ -293,8 +293,9 @@ def probe_command(
     ] = "max",
     folds: Annotated[int, typer.Option("--folds", min=2, help="Folds without a split column.")
                      ] = 5,
-    audio_root: Annotated[Path | None, typer.Option(
-        "--audio-root", help="Where the clips' audio lives (default: as recorded at export).")
+    audio_root: Annotated[str | None, typer.Option(
+        "--audio-root", help="Where the clips' audio lives, a path or a URL (default: as "
+        "recorded at export).")
     ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
     events: Annotated[bool, typer.Option(

@@ -20,9 +20,11 @@ from typing import Any
 
 import numpy as np
 
+from . import store
 from ._errors import ParameterError
 from .audio import load
 from .config import FrontEndConfig
+from .evaluation import open_dataset
 from .events import SegmentScores, segment_scores
 from .frontend import FrontEnd
 
@@ -49,12 +51,7 @@ class _Clip:
 
 
 def _read_clips(dataset: str | Path, split_column: str) -> tuple[list[_Clip], dict[str, Any]]:
-    import pyarrow.dataset as pads
-
-    try:
-        ds = pads.dataset(str(dataset), format="parquet")
-    except (OSError, ValueError) as exc:
-        raise ParameterError(f"{dataset}: not a readable Parquet dataset ({exc})") from None
+    ds = open_dataset(dataset)
     names = ds.schema.names
     raw_meta = (ds.schema.metadata or {}).get(b"timbrel")
     if raw_meta is None or "features" not in names:
@@ -175,7 +172,7 @@ def _score(name: str, train: list[np.ndarray], test: list[np.ndarray], train_y: 
                           per_class=s.per_class)
 
 
-def _baseline_frames(kind: str, path: Path, fe: FrontEndConfig, n_frames: int) -> np.ndarray:
+def _baseline_frames(kind: str, path: str | Path, fe: FrontEndConfig, n_frames: int) -> np.ndarray:
     import librosa
 
     y = load(path, sr=fe.sample_rate, channel=fe.channel)
@@ -252,10 +249,11 @@ def probe_events(
 
     scores = [score(f"rbm-{meta.get('hidden', '?')}", [c.features[::step] for c in train],
                     [c.features for c in test])]
-    root = Path(audio_root or meta.get("audio_root", "."))
+    root = str(audio_root or meta.get("audio_root", "."))
     fe = FrontEndConfig(**meta["frontend"])
     for kind in baselines:
-        frames = {c.source: _baseline_frames(kind, root / c.source, fe, len(c.features))
+        frames = {c.source: _baseline_frames(kind, store.join(root, c.source), fe,
+                                             len(c.features))
                   for c in clips}
         scores.append(score(kind, [frames[c.source][::step] for c in train],
                             [frames[c.source] for c in test]))

@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from . import store
 from ._errors import ParameterError
 from .audio import load
 from .frontend import BandStats, FrontEnd, stack_context
@@ -39,6 +40,23 @@ KMEANS_EPSILON = 0.1
 KMEANS_WINDOWS = 50000
 
 
+def open_dataset(dataset: str | Path) -> Any:
+    """A ``pyarrow.dataset.Dataset`` of an exported folder, local or at a URL.
+
+    Raises
+    ------
+    ParameterError
+        If it is missing or not readable as Parquet.
+    """
+    import pyarrow.dataset as pads
+
+    try:
+        path, fs = store.arrow_location(dataset)
+        return pads.dataset(path, filesystem=fs, format="parquet")
+    except (OSError, ValueError, store.StoreError) as exc:
+        raise ParameterError(f"{dataset}: not a readable Parquet dataset ({exc})") from None
+
+
 def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Sequence[str] = ()
                        ) -> tuple[list[str], np.ndarray, dict[str, list[str]], dict[str, Any]]:
     """Pool an exported frame dataset into one row per clip, streaming record batches.
@@ -53,12 +71,7 @@ def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Se
     metadata : dict
         The dataset's timbrel metadata (model checksum, front end, audio root, ...).
     """
-    import pyarrow.dataset as pads
-
-    try:
-        ds = pads.dataset(str(dataset), format="parquet")
-    except (OSError, ValueError) as exc:
-        raise ParameterError(f"{dataset}: not a readable Parquet dataset ({exc})") from None
+    ds = open_dataset(dataset)
     schema = ds.schema
     raw_meta = (schema.metadata or {}).get(b"timbrel")
     if raw_meta is None or ("features" not in schema.names and "h0000" not in schema.names):
@@ -145,13 +158,13 @@ class ProbeResult:
         return "\n".join(lines)
 
 
-def _frames_of(paths: Sequence[Path], fe: FrontEnd) -> list[np.ndarray]:
+def _frames_of(paths: Sequence[str | Path], fe: FrontEnd) -> list[np.ndarray]:
     c = fe.config
     return [fe.frames(load(path, sr=c.sample_rate, channel=c.channel), c.sample_rate)
             for path in paths]
 
 
-def _mfcc(path: Path, fe: FrontEnd) -> np.ndarray:
+def _mfcc(path: str | Path, fe: FrontEnd) -> np.ndarray:
     """MFCCs with deltas from librosa, with the model's own framing and mel settings."""
     import librosa
 
@@ -216,7 +229,7 @@ def _kmeans_features(frames: Sequence[np.ndarray], train_idx: np.ndarray, *, con
                      for w in windows])
 
 
-def _baseline_features(kind: str, paths: Sequence[Path], fe: FrontEnd) -> np.ndarray:
+def _baseline_features(kind: str, paths: Sequence[str | Path], fe: FrontEnd) -> np.ndarray:
     if kind == "logmel":
         return np.array([pool_frames(f, BASELINE_POOLS["logmel"]) for f in _frames_of(paths, fe)])
     return np.array([pool_frames(_mfcc(p, fe), BASELINE_POOLS["mfcc"]) for p in paths])
@@ -247,7 +260,7 @@ def _score(name: str, pools: Sequence[str], X: np.ndarray, y: np.ndarray,
         confusion=confusion_matrix(t, p, labels=classes).tolist())
 
 
-def _kmeans_score(paths: Sequence[Path], fe: FrontEnd, k: int, pools: Sequence[str],
+def _kmeans_score(paths: Sequence[str | Path], fe: FrontEnd, k: int, pools: Sequence[str],
                   y: np.ndarray, classes: list[str],
                   splits: list[tuple[np.ndarray, np.ndarray]], seed: int) -> ProbeScore:
     """The k-means peer, fitted on each split's training clips alone."""
@@ -323,9 +336,7 @@ def probe(
     bad = [b for b in baselines if b not in BASELINES]
     if bad:
         raise ParameterError(f"baseline(s) {bad} not among {', '.join(BASELINES)}")
-    import pyarrow.dataset as pads
-
-    names = pads.dataset(str(dataset), format="parquet").schema.names
+    names = open_dataset(dataset).schema.names
     split_name = split_column if split_column is not None and split_column in names else None
     columns = [label, *([split_name] if split_name is not None else [])]
     sources, X, extra, meta = read_clip_features(dataset, pools, columns=columns)
@@ -355,11 +366,11 @@ def probe(
         scheme = f"stratified {k}-fold over clips"
     scores = [_score(f"rbm-{meta.get('hidden', '?')}", pools, X, y, classes, splits, seed)]
     if baselines:
-        root = Path(audio_root or meta.get("audio_root", "."))
+        root = str(audio_root or meta.get("audio_root", "."))
         from .config import FrontEndConfig
 
         fe = FrontEnd(FrontEndConfig(**meta["frontend"]))
-        paths = [root / s for s in sources]
+        paths = [store.join(root, s) for s in sources]
         for kind in baselines:
             if kind == "kmeans":
                 scores.append(_kmeans_score(paths, fe, int(meta["n_hidden"]), pools, y, classes,

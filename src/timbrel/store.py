@@ -195,6 +195,16 @@ def list_files(url: str) -> list[str]:
     return sorted(base + p[len(root):] for p in found if p.startswith(root + "/"))
 
 
+def arrow_location(location: str | os.PathLike[str]) -> tuple[str, Any]:
+    """A path and file system for pyarrow (``pyarrow.dataset.dataset(path,
+    filesystem=fs)``): the local path and None, or the path inside a store and its
+    fsspec file system (which pyarrow wraps)."""
+    text = os.fspath(location)
+    if not is_url(text):
+        return os.fspath(local(text)), None
+    return filesystem(text)[1], filesystem(text)[0]
+
+
 def read_bytes(url: str) -> bytes:
     """The whole object at a URL (or a local file)."""
     if not is_url(url):
