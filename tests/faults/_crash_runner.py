@@ -140,6 +140,10 @@ def _drop_privileges(uid: int) -> None:
 
 
 def main() -> int:
+    # A shell without job control starts background commands with SIGINT ignored, and
+    # Python then never raises KeyboardInterrupt; a run at a terminal has the default
+    # handler, so the runner restores it whatever way the test suite was started.
+    signal.signal(signal.SIGINT, signal.default_int_handler)
     argv = sys.argv[1:]
     if argv[0] == "--as-user":
         _drop_privileges(int(argv[1]))
