@@ -236,6 +236,11 @@ def test_a_network_drop_mid_run_is_one_line_and_loses_nothing(s3, words, tmp_pat
     reused = int(re.search(r"\((\d+) reused\)", again.stdout).group(1))
     assert 0 < reused < N_CLIPS, again.stdout  # the shards finished before the drop
     link.cut()
+    # a source the store cannot give is the network's fault, not the files': one line
+    cut_off = _cli("frames", source, "--out", str(tmp_path / "here"), "--quiet", env=env)
+    assert cut_off.returncode == 1
+    assert len(cut_off.stderr.strip().splitlines()) == 1, cut_off.stderr
+    assert "cannot be reached" in cut_off.stderr and "failed:" not in cut_off.stderr
     # and the cache is whole: every clip's frames as a local build gives them
     local = tmp_path / "cache"
     build_cache(words / "manifest.csv", local, workers=1,

@@ -143,3 +143,26 @@ def test_sources_at_a_url_are_listed_with_names_relative_to_it(tmp_path):
 
     with pytest.raises(ParameterError, match="leads outside the manifest's folder"):
         discover(f"{base}/out.csv")
+
+
+@pytest.mark.parametrize("make, kind, reason", [
+    (lambda: __import__("botocore.exceptions").exceptions.EndpointConnectionError(
+        endpoint_url="http://127.0.0.1:1"), "StoreUnreachable", "the store cannot be reached"),
+    (lambda: __import__("botocore.exceptions").exceptions.NoCredentialsError(),
+     "StoreError", "no credentials found"),
+    (lambda: PermissionError("Access Denied"), "StoreError", "access denied"),
+    (lambda: FileNotFoundError("The specified bucket does not exist"), "StoreError",
+     "no such bucket"),
+    (lambda: ConnectionResetError(104, "Connection reset by peer"), "StoreUnreachable",
+     "the store cannot be reached"),
+])
+def test_a_store_failure_becomes_one_line_of_its_kind(make, kind, reason):
+    # the exception types botocore and the OS raise for these failures
+    pytest.importorskip("botocore")
+    from timbrel import store
+
+    with pytest.raises(StoreError) as caught, store.errors("s3://b/x", "read"):
+        raise make()
+    assert type(caught.value).__name__ == kind
+    assert str(caught.value).startswith(f"s3://b/x: cannot read: {reason}")
+    assert "\n" not in str(caught.value)

@@ -156,6 +156,8 @@ def _frame_task(task: dict[str, Any]) -> dict[str, Any]:
             start = fh.tell()
             try:
                 entry = _frame_one(job, frontend, write)
+            except store.StoreUnreachable:
+                raise  # the network's fault, not the file's: the run stops
             except (AudioReadError, ParameterError, store.StoreError, OSError, ValueError,
                     RuntimeError) as exc:
                 fh.seek(start)
@@ -312,6 +314,8 @@ def _build_locked(source: str | Path, out: store.Folder, items: list[AudioItem],
         except OSError as exc:
             failures[item.source] = unreadable_reason(exc)
             continue
+        except store.StoreUnreachable:
+            raise
         except store.StoreError as exc:
             failures[item.source] = str(exc).split(": ", 1)[-1]
             continue

@@ -214,6 +214,8 @@ def _export_group(task: dict[str, Any]) -> dict[str, Any]:
                 try:
                     stats = _export_clip(job, pipe, frontend, cache, writer, schema,
                                          group, task, part)
+                except store.StoreUnreachable:
+                    raise  # the network's fault, not the file's: the run stops
                 except (AudioReadError, ParameterError, store.StoreError, OSError, ValueError,
                         RuntimeError) as exc:
                     reason = exc.reason if isinstance(exc, AudioReadError) else str(exc)

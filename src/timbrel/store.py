@@ -44,15 +44,22 @@ from ._atomic import (
 )
 from ._errors import TimbrelError
 
-__all__ = ["Folder", "LocalFolder", "StoreError", "StoreFolder", "filesystem", "folder",
+__all__ = ["Folder", "LocalFolder", "StoreError", "StoreFolder", "StoreUnreachable",
+           "filesystem", "folder",
            "is_url", "join", "local_copy", "parent", "stat_key"]
 
+UNREACHABLE = "the store cannot be reached"
 _SCHEME = re.compile(r"^([a-zA-Z][a-zA-Z0-9+.-]*)://")
 
 
 class StoreError(TimbrelError):
     """An object store refused or failed a request (no bucket, no credentials, denied,
     unreachable). The message is one line naming the URL and the reason."""
+
+
+class StoreUnreachable(StoreError):
+    """The store could not be reached (a network drop, a timeout): never one input file's
+    fault, so it stops a run instead of being listed as a failed file."""
 
 
 def is_url(path: object) -> bool:
@@ -121,9 +128,10 @@ def _reason(exc: BaseException) -> str:
     if isinstance(exc, FileNotFoundError):
         return "no such object"
     if name.startswith(("EndpointConnectionError", "ConnectTimeout", "ReadTimeout",
-                        "ConnectionClosed", "ClientConnector", "ServerDisconnected")) or \
+                        "ConnectionClosed", "ClientConnector", "ServerDisconnected",
+                        "ClientPayloadError", "ResponseStreamingError", "IncompleteRead")) or \
             isinstance(exc, (ConnectionError, TimeoutError)):
-        return f"the store cannot be reached ({text})"
+        return f"{UNREACHABLE} ({text})"
     if isinstance(exc, OSError):
         return os_reason(exc)
     return f"{name}: {text}"
@@ -150,7 +158,9 @@ def errors(url: str, doing: str = "") -> Iterator[None]:
         raise
     except _store_exceptions() as exc:
         what = f"cannot {doing}: " if doing else ""
-        raise StoreError(f"{url}: {what}{_reason(exc)}") from None
+        reason = _reason(exc)
+        kind = StoreUnreachable if reason.startswith(UNREACHABLE) else StoreError
+        raise kind(f"{url}: {what}{reason}") from None
 
 
 def stat_key(url: str) -> tuple[int, int]:
