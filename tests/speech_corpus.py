@@ -54,6 +54,7 @@ __all__ = [
     "installed_voice_names",
     "make_spoken_word_set",
     "skip_or_fail_without_espeak",
+    "speak",
 ]
 
 ESPEAK_PROGRAM = "espeak-ng"
@@ -437,25 +438,55 @@ def _clip_jobs(stamp: dict) -> list[dict]:
     return jobs
 
 
-def _synthesise_clip(job: dict, build_dir: Path, sample_rate: int) -> None:
-    target = build_dir / job["path"]
-    native = target.with_suffix(".native.wav")
+def speak(
+    text: str, voice: str, *, rate: int, pitch: int, sample_rate: int, scratch: Path
+) -> np.ndarray:
+    """Synthesise ``text`` with one espeak-ng voice and return it resampled.
+
+    Parameters
+    ----------
+    text : str
+        What to say (a word, for the sets of this module).
+    voice : str
+        An installed espeak-ng voice, ``BASE`` or ``BASE+VARIANT`` (not checked here).
+    rate : int
+        Speaking rate in words per minute, 80 .. 450 (espeak-ng's ``-s``; not checked).
+    pitch : int
+        Base pitch, 0 .. 99 (espeak-ng's ``-p``; not checked).
+    sample_rate : int
+        Sample rate of the returned samples in Hz.
+    scratch : pathlib.Path
+        A WAV file name the synthesiser may write and this function removes.
+
+    Returns
+    -------
+    samples : np.ndarray, shape (n_samples,), float32
+        Mono samples in -1 .. 1, resampled with :func:`scipy.signal.resample_poly`.
+
+    Raises
+    ------
+    TimbrelError
+        When espeak-ng fails or writes no samples.
+    """
     _run_espeak(
-        [
-            "-v", job["voice"], "-s", str(job["rate"]), "-p", str(job["pitch"]),
-            "-w", str(native), job["label"],
-        ]
+        ["-v", voice, "-s", str(rate), "-p", str(pitch), "-w", str(scratch), text]
     )  # fmt: skip
-    samples, native_rate = sf.read(native, dtype="float32", always_2d=True)
-    native.unlink()
+    samples, native_rate = sf.read(scratch, dtype="float32", always_2d=True)
+    scratch.unlink()
     if samples.shape[0] == 0:
-        raise TimbrelError(f"espeak-ng wrote no samples for {job['label']!r} ({job['voice']})")
+        raise TimbrelError(f"espeak-ng wrote no samples for {text!r} ({voice})")
     mono = samples.mean(axis=1)
     if native_rate != sample_rate:
         common = math.gcd(native_rate, sample_rate)
         mono = resample_poly(mono, sample_rate // common, native_rate // common)
     # The polyphase filter can overshoot full scale slightly on sharp onsets.
-    mono = np.clip(mono, -1.0, 1.0).astype(np.float32)
+    return np.clip(mono, -1.0, 1.0).astype(np.float32)
+
+
+def _synthesise_clip(job: dict, build_dir: Path, sample_rate: int) -> None:
+    target = build_dir / job["path"]
+    mono = speak(job["label"], job["voice"], rate=job["rate"], pitch=job["pitch"],
+                 sample_rate=sample_rate, scratch=target.with_suffix(".native.wav"))
     sf.write(target, mono, sample_rate, subtype="PCM_16")
 
 
