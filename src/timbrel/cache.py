@@ -323,7 +323,7 @@ def _build_locked(source: str | Path, out: store.Folder, items: list[AudioItem],
         if key in pool:
             entries[item.source] = pool[key]
         else:
-            todo.append({"path": _item_path(item), "source": item.source, "key": key,
+            todo.append({"path": os.fsdecode(item.path), "source": item.source, "key": key,
                          "size": size, "mtime_ns": mtime_ns})
     n_reused = len(entries)
     workers = max(1, workers or os.cpu_count() or 1)
@@ -380,7 +380,7 @@ def _build_locked(source: str | Path, out: store.Folder, items: list[AudioItem],
     marker = {
         "format": CACHE_FORMAT, "version": CACHE_VERSION, "timbrel": __version__,
         "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        "source": _source_name(source), "index": index_name,
+        "source": store.absolute(source), "index": index_name,
         "config": config.to_dict(), "frame_key": frame_key,
         "n_clips": len(ordered), "n_frames": n_frames, "audio_seconds": audio_seconds,
         "n_failed": len(failure_list), "band_stats": stats.to_dict(),
@@ -390,8 +390,7 @@ def _build_locked(source: str | Path, out: store.Folder, items: list[AudioItem],
         tmp.write_text(json.dumps(marker, indent=1), encoding="utf-8")
     _collect_garbage(out, keep_index=index_name,
                      keep_shards={entries[s]["shard"] for s in ordered})
-    path = out.path if isinstance(out, store.LocalFolder) else out.location
-    return CacheSummary(path=path, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
+    return CacheSummary(path=out.where, n_files=len(items), n_clips=len(ordered), n_reused=n_reused,
                         n_frames=n_frames, audio_seconds=audio_seconds,
                         wall_seconds=time.perf_counter() - t0, failures=failure_list)
 
@@ -401,14 +400,6 @@ def _index_schema(extra_columns: Sequence[str]) -> pa.Schema:
     for name in extra_columns:
         schema = schema.append(pa.field(name, pa.string()))
     return schema
-
-
-def _item_path(item: AudioItem) -> str:
-    return str(item.path) if store.is_url(item.path) else os.fsdecode(item.path)
-
-
-def _source_name(source: str | Path) -> str:
-    return str(source) if store.is_url(source) else os.fsdecode(store.local(source).absolute())
 
 
 def _write_failures(out: store.Folder, failures: list[ClipFailure]) -> None:
@@ -454,8 +445,7 @@ class FrameCache:
     def __init__(self, path: str | Path | store.Folder, *, index: pa.Table, n_mels: int,
                  marker: dict[str, Any] | None = None) -> None:
         self.folder = path if isinstance(path, store.Folder) else store.folder(path)
-        self.path: Path | str = (self.folder.path if isinstance(self.folder, store.LocalFolder)
-                                 else self.folder.location)
+        self.path = self.folder.where
         self.index = index
         self.n_mels = n_mels
         self.marker = marker or {}

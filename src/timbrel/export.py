@@ -583,7 +583,7 @@ def _export_locked(source: str | Path, model: str | Path, out: store.Folder,
     jobs, extra_columns, cache_path, audio_root = _jobs(source, pipe,
                                                         allow_outside=allow_outside)
     problems = _attach_events(jobs, annotations) if annotations is not None else []
-    metadata = {"model_checksum": pipe.checksum, "model": _absolute(model),
+    metadata = {"model_checksum": pipe.checksum, "model": store.absolute(model),
                 "hidden": pipe.top.hidden, "n_hidden": options["n_features"],
                 "layer": options["layer"], "frontend": dataclasses.asdict(pipe.config.frontend),
                 "config": pipe.config.to_dict(), "timbrel": __version__,
@@ -615,8 +615,7 @@ def _export_locked(source: str | Path, model: str | Path, out: store.Folder,
     finished, _, _ = _finished_parts(out, pipe.checksum)
     record.update(complete=True, n_sources=len(finished), finished_sources=sorted(finished))
     _write_record(out, record)
-    path = out.path if isinstance(out, store.LocalFolder) else out.location
-    return ExportSummary(path=path, n_files=len(jobs), n_clips=len(todo) - len(failures),
+    return ExportSummary(path=out.where, n_files=len(jobs), n_clips=len(todo) - len(failures),
                          n_skipped=len(jobs) - len(todo), n_frames=n_frames,
                          audio_seconds=seconds, wall_seconds=time.perf_counter() - t0,
                          failures=sorted(failures.items()), event_problems=problems)
@@ -728,11 +727,6 @@ def _audio_root(source: str | Path) -> str:
     return os.fsdecode((path if path.is_dir() else path.parent).absolute())
 
 
-def _absolute(path: str | Path) -> str:
-    """A path made absolute, or a URL as given."""
-    return str(path) if store.is_url(path) else os.fsdecode(store.local(path).absolute())
-
-
 def _duration(path: str | Path) -> float:
     """Seconds of audio of a file (fetched first if a URL)."""
     with store.local_copy(path) as local:
@@ -761,14 +755,13 @@ def _jobs(source: str | Path, pipe: FeaturePipeline, *, allow_outside: bool
         table = cache.index.to_pylist()
         jobs = [{"source": row["source"], "clip": i, "duration_s": row["duration_s"],
                  "extra": {c: row.get(c) or "" for c in extra}} for i, row in enumerate(table)]
-        return jobs, extra, _absolute(src), _audio_root(cache.marker["source"])
+        return jobs, extra, store.absolute(src), _audio_root(cache.marker["source"])
     items, extra = discover(src, allow_outside=allow_outside)
     return [_job(item) for item in items], extra, None, _audio_root(src)
 
 
 def _job(item: AudioItem) -> dict[str, Any]:
-    path = str(item.path) if store.is_url(item.path) else os.fsdecode(item.path)
-    return {"source": item.source, "path": path, "extra": dict(item.extra)}
+    return {"source": item.source, "path": os.fsdecode(item.path), "extra": dict(item.extra)}
 
 
 def _task_id(checksum: str, chunk: list[dict[str, Any]]) -> str:

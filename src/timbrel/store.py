@@ -212,7 +212,14 @@ def arrow_location(location: str | os.PathLike[str]) -> tuple[str, Any]:
     text = os.fspath(location)
     if not is_url(text):
         return os.fspath(local(text)), None
-    return filesystem(text)[1], filesystem(text)[0]
+    fs, path = filesystem(text)
+    return path, fs
+
+
+def absolute(location: str | os.PathLike[str]) -> str:
+    """A local path made absolute, or a URL as given: how records name a location."""
+    text = os.fspath(location)
+    return text if is_url(text) else os.fsdecode(local(text).absolute())
 
 
 def read_bytes(url: str) -> bytes:
@@ -266,6 +273,11 @@ class Folder:
     """
 
     location: str
+
+    @property
+    def where(self) -> Path | str:
+        """The folder as callers name it: a local ``Path``, or the URL."""
+        return self.location
 
     def url(self, name: str) -> str:
         """The path or URL of a member, for messages and for other processes."""
@@ -330,12 +342,20 @@ class LocalFolder(Folder):
         self.path = local(path)
         self.location = os.fspath(self.path)
 
+    @property
+    def where(self) -> Path | str:
+        return self.path
+
     def url(self, name: str) -> str:
         return os.fspath(self.path / name)
 
     def file(self, name: str) -> Path:
         """The local path of a member (memory maps read it in place)."""
         return self.path / name
+
+    def writing(self, name: str, *, guard: Guard | None = None
+                ) -> contextlib.AbstractContextManager[Path]:
+        return atomic_path(self.path / name, guard=guard)
 
     def reader(self, name: str) -> contextlib.AbstractContextManager[Any]:
         return contextlib.nullcontext(os.fspath(self.path / name))
