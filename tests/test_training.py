@@ -160,6 +160,24 @@ def test_a_layer_stacked_on_a_model_learns_from_its_features(tmp_path, cache_dir
                                stacked.features(frames, "all"), rtol=1e-6)
 
 
+@pytest.mark.parametrize("epsilon", [0.1, 10.0])
+def test_whitened_windows_keep_unit_variance_on_average(tmp_path, cache_dir, epsilon):
+    # Common practice (Hinton's practical guide, 2010, sec. 13.2): Gaussian visible units
+    # start at sigma = 1 on data scaled to unit variance. A partial whitening (large
+    # epsilon shrinks every direction of variance below epsilon) must not change that scale.
+    from timbrel.pipeline import whiten
+
+    model = tmp_path / "white.npz"
+    train(cache_dir, model, config=_config().with_overrides(
+        ["training.whiten=zca", f"training.whiten_epsilon={epsilon}"]))
+    pipe = load_pipeline(model)
+    cache = FrameCache.open(cache_dir)
+    windows = np.concatenate([stack_context(pipe.standardise(cache.clip_frames(i)), 2)
+                              for i in range(len(cache))])
+    white = whiten(windows, *pipe.whitening)
+    assert 0.8 < float(np.mean(np.square(white))) < 1.25
+
+
 def test_whitened_training_and_a_stack_on_it(tmp_path, cache_dir):
     from timbrel.pipeline import load_pipeline, whiten
 

@@ -274,9 +274,16 @@ def _layer_input(below: FeaturePipeline, train: WindowBatches, seed: int
 
 def _whitening(train: WindowBatches, epsilon: float, seed: int
                ) -> tuple[np.ndarray, np.ndarray, Callable[[np.ndarray], np.ndarray]]:
-    """ZCA whitening of the training windows and the map that applies it."""
-    mean, matrix = zca_whitening(train.sample(STATISTICS_FRAMES,
-                                              np.random.default_rng([seed, 0x2CA])), epsilon)
+    """ZCA whitening of the training windows and the map that applies it.
+
+    The matrix is scaled so that the whitened windows have unit variance on average: a
+    large ``epsilon`` (a partial whitening) would otherwise shrink them far below the
+    Gaussian units' starting σ of 1, which the slow variance steps take many epochs to
+    follow."""
+    sample = train.sample(STATISTICS_FRAMES, np.random.default_rng([seed, 0x2CA]))
+    mean, matrix = zca_whitening(sample, epsilon)
+    spread = float(np.sqrt(np.mean(np.square(whiten(sample, mean, matrix), dtype=np.float64))))
+    matrix = (matrix / max(spread, 1e-12)).astype(np.float32)
     return mean, matrix, lambda w: whiten(w, mean, matrix)
 
 
