@@ -67,3 +67,21 @@ def test_a_bare_model_file_is_not_a_pipeline(tmp_path):
     RBM(n_hidden=3, epochs=1, seed=0).fit(x).save(tmp_path / "bare.npz")
     with pytest.raises(ModelFileError, match="not a trained timbrel pipeline"):
         load_pipeline(tmp_path / "bare.npz")
+
+
+def test_contrast_normalise_follows_its_definition_and_ignores_level_and_gain():
+    # Source: the per-input brightness and contrast normalisation of Coates, Lee & Ng 2011
+    # (AISTATS), x' = (x - mean(x)) / sqrt(var(x) + eps), computed here with numpy; a shift
+    # of a window's level and a change of its scale leave it unchanged (exactly as eps -> 0).
+    from timbrel.pipeline import contrast_normalise
+
+    x = np.random.default_rng(3).standard_normal((50, 33)).astype(np.float32)
+    expected = (x - x.mean(1, keepdims=True)) / np.sqrt(x.var(1, keepdims=True) + 0.1)
+    np.testing.assert_allclose(contrast_normalise(x, 0.1), expected, rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(contrast_normalise(4.0 * x + 7.0, 1e-9),
+                               contrast_normalise(x, 1e-9), rtol=1e-4, atol=1e-5)
+    out = contrast_normalise(x, 1e-9)
+    np.testing.assert_allclose(out.mean(1), 0.0, atol=1e-6)
+    np.testing.assert_allclose(out.std(1), 1.0, rtol=1e-5)
+    # a flat window (silence after standardisation) stays finite: all zeros
+    assert np.array_equal(contrast_normalise(np.full((1, 5), 3.0)), np.zeros((1, 5), np.float32))

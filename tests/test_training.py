@@ -160,6 +160,29 @@ def test_a_layer_stacked_on_a_model_learns_from_its_features(tmp_path, cache_dir
                                stacked.features(frames, "all"), rtol=1e-6)
 
 
+def test_contrast_normalised_training_and_a_stack_on_it(tmp_path, cache_dir):
+    # The model sees each standardised window normalised to zero mean and unit spread and
+    # then whitened (the order of Coates, Lee & Ng 2011), in training and in its features;
+    # a layer stacked on it keeps that front end.
+    from timbrel.pipeline import contrast_normalise, whiten
+
+    base = tmp_path / "contrast.npz"
+    train(cache_dir, base, config=_config().with_overrides(
+        ["training.window_contrast=true", "training.whiten=zca"]))
+    pipe = load_pipeline(base)
+    assert pipe.config.training.window_contrast
+    frames = FrameCache.open(cache_dir).clip_frames(1)
+    windows = stack_context(pipe.standardise(frames), 2)
+    np.testing.assert_allclose(
+        pipe.features(frames),
+        pipe.rbm.transform(whiten(contrast_normalise(windows), *pipe.whitening)), rtol=1e-5)
+    top = tmp_path / "top.npz"
+    train(cache_dir, top, config=_config(n_hidden=6), on=base)
+    stacked = load_pipeline(top)
+    assert stacked.config.training.window_contrast
+    np.testing.assert_allclose(stacked.features(frames, "first"), pipe.features(frames))
+
+
 @pytest.mark.parametrize("epsilon", [0.1, 10.0])
 def test_whitened_windows_keep_unit_variance_on_average(tmp_path, cache_dir, epsilon):
     # Common practice (Hinton's practical guide, 2010, sec. 13.2): Gaussian visible units

@@ -189,6 +189,9 @@ class TrainingConfig:
     whiten: str = _field(
         "none", "decorrelate the context windows before the model: 'none' or 'zca'",
         choices=WHITENINGS)
+    window_contrast: bool = _field(
+        False, "subtract each context window's mean and divide by its spread, before "
+        "whitening and the model")
     whiten_epsilon: float = _field(
         0.1, "added to each eigenvalue of the windows' covariance before whitening",
         low=1e-6, high=100.0)

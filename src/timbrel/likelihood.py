@@ -686,6 +686,10 @@ def score(
             or max_windows < 0:
         raise ParameterError(f"max_windows must be an integer ≥ 0; got {max_windows!r}")
     pipe = load_pipeline(model)
+    if pipe.config.training.window_contrast:
+        raise ParameterError(f"{model}: trained on contrast-normalised windows "
+                             "(training.window_contrast), a map with no inverse, so the "
+                             "model gives no likelihood of the windows themselves")
     frames = FrameCache.open(cache)
     check_config_against_cache(pipe.config, frames)
     rbm = pipe.rbm

@@ -21,8 +21,8 @@ from .frontend import ContextStacker, mel_band_edges, stack_context, standardise
 from .model import RBM, ModelFile, rbm_from_parameters, read_model_file
 from .model._files import PARAM_ARRAYS
 
-__all__ = ["LAYERS", "FeaturePipeline", "FeatureRows", "Layer", "describe_model", "describe_text",
-           "layer_arrays", "load_pipeline", "whiten"]
+__all__ = ["LAYERS", "FeaturePipeline", "FeatureRows", "Layer", "contrast_normalise",
+           "describe_model", "describe_text", "layer_arrays", "load_pipeline", "whiten"]
 
 
 #: Which features a stacked pipeline gives: the top layer's, the first layer's (over the
@@ -75,8 +75,11 @@ class FeaturePipeline:
         self.metadata = metadata
 
     def prepare(self, windows: np.ndarray) -> np.ndarray:
-        """Standardised context windows as the first layer sees them: ZCA-whitened when
-        the model was trained so (``training.whiten``), else unchanged."""
+        """Standardised context windows as the first layer sees them: each normalised to
+        zero mean and unit spread (``training.window_contrast``), then ZCA-whitened
+        (``training.whiten``), each step only when the model was trained so."""
+        if self.config.training.window_contrast:
+            windows = contrast_normalise(windows)
         return windows if self.whitening is None else whiten(windows, *self.whitening)
 
     def whitening_log_det(self) -> float:
@@ -215,6 +218,44 @@ def load_pipeline(path: str | Path) -> FeaturePipeline:
                              f"front end gives {config.frontend.n_visible}")
     return FeaturePipeline(first, config, band_mean, band_scale, model.checksum, meta, upper,
                            _whitening(path, model, config))
+
+
+#: Added to each window's variance before dividing by its spread, in the units of
+#: standardised windows (where a value's variance over the training windows is 1): keeps
+#: near-silent, near-flat windows from being blown up into noise.
+CONTRAST_EPSILON = 0.1
+
+
+def contrast_normalise(windows: np.ndarray, epsilon: float = CONTRAST_EPSILON) -> np.ndarray:
+    """Each window minus its own mean, divided by its own spread: ``(w - mean(w)) /
+    sqrt(var(w) + epsilon)`` over the window's values.
+
+    The brightness and contrast normalisation of each input before whitening and feature
+    learning in Coates, Lee & Ng 2011. On log-mel windows it removes the window's overall
+    level and scales its spectro-temporal relief to a common size, so features respond to
+    the shape of the sound rather than to how loud or how far away it was recorded.
+
+    Parameters
+    ----------
+    windows : np.ndarray, shape (n_windows, n_visible)
+    epsilon : float, default=CONTRAST_EPSILON
+
+    Returns
+    -------
+    np.ndarray, shape (n_windows, n_visible), float32
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> w = np.array([[1.0, 3.0], [10.0, 30.0]], np.float32)
+    >>> contrast_normalise(w, 1e-6).round(3)
+    array([[-1.,  1.],
+           [-1.,  1.]], dtype=float32)
+    """
+    w = np.asarray(windows, np.float32)
+    centred = w - w.mean(axis=1, keepdims=True)
+    spread = np.sqrt(np.square(centred).mean(axis=1, keepdims=True) + np.float32(epsilon))
+    return centred / spread
 
 
 def whiten(windows: np.ndarray, mean: np.ndarray, matrix: np.ndarray) -> np.ndarray:

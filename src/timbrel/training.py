@@ -32,7 +32,7 @@ from .cache import FrameCache
 from .config import Config
 from .frontend import BandStats, standardise
 from .model import CONSTRAINTS, RBM, read_checkpoint, write_checkpoint
-from .pipeline import FeaturePipeline, layer_arrays, load_pipeline, whiten
+from .pipeline import FeaturePipeline, contrast_normalise, layer_arrays, load_pipeline, whiten
 from .windows import (
     Standardiser,
     WindowBatches,
@@ -188,11 +188,15 @@ def train(
         stack, lower = layer_arrays(below)
         arrays.update(lower, input_mean=mean, input_scale=scale)
         n_visible = below.n_features("top")
-    elif config.training.whiten == "zca":
-        mean, matrix, fn = _whitening(windows[0], config.training.whiten_epsilon, seed)
-        arrays.update(whiten_mean=mean, whiten_matrix=matrix)
+    else:
+        if config.training.window_contrast:
+            train_batches = _Mapped(windows[0], contrast_normalise)
+            val_batches = _Mapped(windows[1], contrast_normalise)
+        if config.training.whiten == "zca":
+            mean, matrix, fn = _whitening(train_batches, config.training.whiten_epsilon, seed)
+            arrays.update(whiten_mean=mean, whiten_matrix=matrix)
     if below is not None or config.training.whiten != "none":
-        train_batches, val_batches = _Mapped(windows[0], fn), _Mapped(windows[1], fn)
+        train_batches, val_batches = _Mapped(train_batches, fn), _Mapped(val_batches, fn)
     start_epoch = _start(rbm, checkpoint_path(out), config, n_visible, resume=resume, say=say)
     epochs = _Epochs(rbm, config, train_batches, val_batches, seed=seed, out=out, say=say,
                      began=t0)
@@ -243,7 +247,7 @@ class _Batches(Protocol):
 class _Mapped:
     """Minibatches and samples of windows, each passed through ``fn`` on the way out."""
 
-    def __init__(self, windows: WindowBatches, fn: Callable[[np.ndarray], np.ndarray]) -> None:
+    def __init__(self, windows: _Batches, fn: Callable[[np.ndarray], np.ndarray]) -> None:
         self.windows, self.fn = windows, fn
         self.clips, self.n_frames = windows.clips, windows.n_frames
 
@@ -272,7 +276,7 @@ def _layer_input(below: FeaturePipeline, train: WindowBatches, seed: int
     return mean, scale, lambda w: standardise(below.transform_windows(w), mean, scale)
 
 
-def _whitening(train: WindowBatches, epsilon: float, seed: int
+def _whitening(train: _Batches, epsilon: float, seed: int
                ) -> tuple[np.ndarray, np.ndarray, Callable[[np.ndarray], np.ndarray]]:
     """ZCA whitening of the training windows and the map that applies it.
 
@@ -308,6 +312,7 @@ def _open_cache(cache_path: str | Path, config: Config | None, overrides: Iterab
         config = dataclasses.replace(config, model={**config.model, **model})
     if below is not None:  # the lower layers' front end, context and whitening
         training = dataclasses.replace(config.training, whiten=below.config.training.whiten,
+                                       window_contrast=below.config.training.window_contrast,
                                        whiten_epsilon=below.config.training.whiten_epsilon)
         config = dataclasses.replace(config, frontend=below.config.frontend, training=training)
     check_config_against_cache(config, cache)
