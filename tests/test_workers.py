@@ -16,7 +16,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from timbrel import TimbrelError, _workers
-from timbrel._atomic import LOCK_NAME, folder_lock
+from timbrel._atomic import LOCK_NAME, folder_lock, process_alive
 from timbrel._workers import even_chunks, start_method, task_results
 
 
@@ -196,3 +196,12 @@ def test_an_interrupt_ends_the_workers_at_once(tmp_path):
     pids = [int(p.name) for p in tmp_path.iterdir()]
     assert len(pids) == 2 and all(_state(pid) in (None, "Z") for pid in pids)
     assert time.monotonic() - t0 < 60  # the running tasks were not waited for
+
+
+def test_process_alive_tells_a_running_process_from_a_reaped_one():
+    # Source: POSIX kill(2) with signal 0 checks that a process exists without signalling it.
+    assert process_alive(os.getpid())
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()  # reaped: its pid names no process now (until the system reuses it)
+    assert not process_alive(child.pid)
+    assert process_alive("not a pid")  # unknown owner: treated as running, never stolen from

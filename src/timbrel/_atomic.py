@@ -19,6 +19,18 @@ def os_reason(exc: OSError) -> str:
     return exc.strerror or str(exc) or type(exc).__name__
 
 
+def process_alive(pid: int) -> bool:
+    """Whether process ``pid`` of this host still runs (POSIX: signal 0). A process we may
+    not signal runs; so, to be safe, does a pid that is not a valid number."""
+    try:
+        os.kill(int(pid), 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, ValueError, OverflowError):
+        return True
+    return True
+
+
 def make_folder(path: str | Path) -> Path:
     """Create an output folder and its parents; a failure is an :class:`OutputError`."""
     path = Path(path)

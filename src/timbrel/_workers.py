@@ -30,7 +30,7 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any, TypeVar
 
-from ._atomic import HELD_LOCK_FDS
+from ._atomic import HELD_LOCK_FDS, process_alive
 from ._errors import WorkerError
 
 Result = TypeVar("Result")
@@ -62,7 +62,7 @@ def _die_with_parent(main: int) -> None:
     ``main`` ends (it reads EOF on a pipe from ``main``).
     """
     parent = os.getppid()
-    if parent != main and not _alive(main):
+    if parent != main and not process_alive(main):
         os._exit(1)  # main died before this worker got here
     if sys.platform.startswith("linux"):
         try:
@@ -77,17 +77,6 @@ def _die_with_parent(main: int) -> None:
             return
     threading.Thread(target=_watch_parent, args=(parent,), name="timbrel-parent-watch",
                      daemon=True).start()
-
-
-def _alive(pid: int) -> bool:
-    # POSIX only (it is reached only where a fork server exists)
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def _watch_parent(parent: int) -> None:

@@ -40,6 +40,7 @@ from ._atomic import (
     folder_lock,
     make_folder,
     os_reason,
+    process_alive,
     remove_stale_temporaries,
 )
 from ._errors import TimbrelError
@@ -532,13 +533,7 @@ def _owner_gone(owner: dict[str, Any]) -> bool:
     """True when a lock's owner was a process of this host that no longer runs."""
     if owner.get("host") != socket.gethostname():
         return False
-    try:
-        os.kill(int(owner.get("pid", 0)), 0)
-    except ProcessLookupError:
-        return True
-    except (PermissionError, ValueError, OverflowError):
-        return False
-    return False
+    return not process_alive(owner.get("pid", 0))
 
 
 def folder(location: str | os.PathLike[str]) -> Folder:
