@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import concurrent.futures
 import contextlib
 import os
 import signal
@@ -205,3 +206,69 @@ def test_process_alive_tells_a_running_process_from_a_reaped_one():
     child.wait()  # reaped: its pid names no process now (until the system reuses it)
     assert not process_alive(child.pid)
     assert process_alive("not a pid")  # unknown owner: treated as running, never stolen from
+
+
+@contextlib.contextmanager
+def _sigterm_raises():
+    # the command line's handler: SIGTERM stops the run as Ctrl-C does (cli._Commands)
+    def on_sigterm(signum, frame):
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, on_sigterm)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def test_a_signal_inside_the_wait_for_results_stops_the_run_cleanly():
+    # CPython's threading.Condition (under Event.wait, which concurrent.futures.wait uses)
+    # releases its lock in a Python method, _release_save; a handler raising just after
+    # that made `with cond:` release an unlocked lock, and a SIGTERM-ed run ended with
+    # "RuntimeError: release unlocked lock" (seen once in CI). A trace hook sends SIGTERM
+    # at exactly that moment; signal.raise_signal runs the handler before it returns.
+    hits = []
+
+    def hook(frame, event, arg):
+        if frame.f_code is not threading.Condition._release_save.__code__:
+            return None
+        if event == "return" and not hits:
+            hits.append(event)
+            signal.raise_signal(signal.SIGTERM)
+        return hook
+
+    never_done = [concurrent.futures.Future()]
+    with _sigterm_raises(), pytest.raises(KeyboardInterrupt):
+        sys.settrace(hook)
+        try:
+            next(_workers._completed(never_done))
+        finally:
+            sys.settrace(None)
+    assert hits == ["return"]  # the signal came inside the Condition, as intended
+
+
+def test_signals_held_are_given_once_to_the_handler_in_place_on_leaving():
+    calls = []
+
+    def note(signum, frame):
+        calls.append(signum)
+
+    before = signal.signal(signal.SIGTERM, note)
+    try:
+        with _workers._signals_held():
+            os.kill(os.getpid(), signal.SIGTERM)
+            os.kill(os.getpid(), signal.SIGTERM)
+            time.sleep(0.05)  # the handler would have run by now
+            assert calls == []
+        assert calls == [signal.SIGTERM]
+        assert signal.getsignal(signal.SIGTERM) is note  # restored
+    finally:
+        signal.signal(signal.SIGTERM, before)
+    # Ctrl-C's default handler raises KeyboardInterrupt on leaving, not inside
+    reached = []
+    with pytest.raises(KeyboardInterrupt):
+        with _workers._signals_held():
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(0.05)
+            reached.append(True)
+    assert reached == [True]

@@ -39,6 +39,9 @@ Result = TypeVar("Result")
 WATCH_INTERVAL = 0.2
 #: Seconds a stopped pool's workers get to end after SIGTERM before SIGKILL.
 STOP_GRACE = 2.0
+#: Seconds the main process waits for a result at a time; a signal that came meanwhile
+#: takes effect at the end of the step (see :func:`_signals_held`).
+WAIT_STEP = 0.1
 _PR_SET_PDEATHSIG = 1
 
 
@@ -183,13 +186,51 @@ def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
 def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:
     from concurrent.futures.process import BrokenProcessPool
 
+    pending = set(futures)
     try:
-        for future in concurrent.futures.as_completed(futures):
-            yield future.result()
+        while pending:
+            with _signals_held():
+                done, pending = concurrent.futures.wait(
+                    pending, timeout=WAIT_STEP, return_when=concurrent.futures.FIRST_COMPLETED)
+            for future in done:
+                yield future.result()
     except BrokenProcessPool:
         raise WorkerError(
             "a worker process stopped abruptly (killed, or out of memory?); the work it had "
             "finished is kept: run the same command again to continue") from None
+
+
+@contextlib.contextmanager
+def _signals_held(signums: Sequence[int] = (signal.SIGINT, signal.SIGTERM)) -> Iterator[None]:
+    """Hold SIGINT and SIGTERM in the main thread while in the block; on leaving it, give
+    each signal that came to the handler that was in place, once.
+
+    Waiting for a result runs Python's ``threading.Condition``, which releases and takes
+    back its lock in Python code; a handler that raises there (Ctrl-C's
+    ``KeyboardInterrupt``, or the command line's SIGTERM handler) leaves ``with cond:``
+    releasing a lock it no longer holds, and the run ended with ``RuntimeError: release
+    unlocked lock`` and a traceback instead of stopping its workers. Outside the main
+    thread (where no handler runs) this does nothing.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    came: list[int] = []
+
+    def hold(signum: int, frame: Any) -> None:
+        came.append(signum)
+
+    previous = {}
+    for signum in signums:
+        if signal.getsignal(signum) is not None:  # None: a handler not set from Python
+            previous[signum] = signal.signal(signum, hold)
+    try:
+        yield
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        for signum in dict.fromkeys(came):
+            signal.raise_signal(signum)  # the restored handler runs here
 
 
 def even_chunks(items: Sequence[Any], workers: int, *, most: int) -> list[list[Any]]:
