@@ -221,14 +221,9 @@ def _sigterm_raises():
         signal.signal(signal.SIGTERM, previous)
 
 
-def test_a_signal_inside_the_wait_for_results_stops_the_run_cleanly():
-    # CPython's threading.Condition (under Event.wait, which concurrent.futures.wait uses)
-    # releases its lock in a Python method, _release_save; a handler raising just after
-    # that made `with cond:` release an unlocked lock, and a SIGTERM-ed run ended with
-    # "RuntimeError: release unlocked lock" (seen once in CI). A trace hook sends SIGTERM
-    # at exactly that moment; signal.raise_signal runs the handler before it returns.
-    hits = []
-
+def _sigterm_in_the_condition_hook(hits):
+    """A trace hook sending SIGTERM just after the first threading.Condition of this
+    thread released its lock; signal.raise_signal runs the handler before it returns."""
     def hook(frame, event, arg):
         if frame.f_code is not threading.Condition._release_save.__code__:
             return None
@@ -237,9 +232,19 @@ def test_a_signal_inside_the_wait_for_results_stops_the_run_cleanly():
             signal.raise_signal(signal.SIGTERM)
         return hook
 
+    return hook
+
+
+def test_a_signal_inside_the_wait_for_results_stops_the_run_cleanly():
+    # CPython's threading.Condition (under Event.wait, which concurrent.futures.wait uses)
+    # releases its lock in a Python method, _release_save; a handler raising just after
+    # that made `with cond:` release an unlocked lock, and a SIGTERM-ed run ended with
+    # "RuntimeError: release unlocked lock" (seen once in CI). A trace hook sends SIGTERM
+    # at exactly that moment.
+    hits = []
     never_done = [concurrent.futures.Future()]
     with _sigterm_raises(), pytest.raises(KeyboardInterrupt):
-        sys.settrace(hook)
+        sys.settrace(_sigterm_in_the_condition_hook(hits))
         try:
             next(_workers._completed(never_done))
         finally:
@@ -272,3 +277,19 @@ def test_signals_held_are_given_once_to_the_handler_in_place_on_leaving():
             time.sleep(0.05)
             reached.append(True)
     assert reached == [True]
+
+
+def test_a_signal_inside_the_wait_for_dask_results_stops_the_run_cleanly():
+    distributed = pytest.importorskip("distributed")
+    hits = []
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                                  dashboard_address=None) as cluster, \
+            _workers.dask_results(time.sleep, [2], cluster.scheduler_address,
+                                  key=lambda task: "sleep-2", error=TimbrelError) as results, \
+            _sigterm_raises(), pytest.raises(KeyboardInterrupt):
+        sys.settrace(_sigterm_in_the_condition_hook(hits))
+        try:
+            next(results)
+        finally:
+            sys.settrace(None)
+    assert hits == ["return"]

@@ -192,7 +192,8 @@ def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:
             with _signals_held():
                 done, pending = concurrent.futures.wait(
                     pending, timeout=WAIT_STEP, return_when=concurrent.futures.FIRST_COMPLETED)
-            for future in done:
+            # the finished work first, so the caller counts it before a failed task stops it
+            for future in sorted(done, key=lambda future: future.exception() is not None):
                 yield future.result()
     except BrokenProcessPool:
         raise WorkerError(
@@ -275,7 +276,7 @@ def dask_results(function: Callable[[Any], Result], tasks: Sequence[Any], addres
         be reached.
     """
     try:
-        from distributed import Client, as_completed
+        from distributed import Client
     except ImportError:
         raise error("--scheduler needs the dask extra: pip install 'timbrel[dask]'") from None
     try:
@@ -284,4 +285,32 @@ def dask_results(function: Callable[[Any], Result], tasks: Sequence[Any], addres
         raise error(f"cannot reach the Dask scheduler at {address} ({exc})") from None
     with client:
         futures = [client.submit(function, task, key=key(task), pure=False) for task in tasks]
-        yield (future.result() for future in as_completed(futures))
+        yield _dask_completed(futures)
+
+
+def _dask_completed(futures: list[Any]) -> Iterator[Any]:
+    """The Dask futures' results as they complete, waiting as :func:`_completed` does
+    (the client waits in Python's ``threading`` code too)."""
+    from distributed import wait
+
+    pending = set(futures)
+    while pending:
+        with _signals_held():
+            try:
+                done, pending = wait(list(pending), timeout=WAIT_STEP,
+                                     return_when="FIRST_COMPLETED")
+            except TimeoutError:
+                continue
+            outcomes = [_outcome(future) for future in done]  # done: no waiting for a task
+        # the finished work first, so the caller counts it before a failed task stops it
+        for value, error in sorted(outcomes, key=lambda outcome: outcome[1] is not None):
+            if error is not None:
+                raise error
+            yield value
+
+
+def _outcome(future: Any) -> tuple[Any, BaseException | None]:
+    try:
+        return future.result(), None
+    except Exception as exc:
+        return None, exc
