@@ -186,19 +186,45 @@ def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
 def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:
     from concurrent.futures.process import BrokenProcessPool
 
-    pending = set(futures)
+    def wait_step(pending: set[Any]) -> tuple[set[Any], set[Any]]:
+        done, pending = concurrent.futures.wait(
+            pending, timeout=WAIT_STEP, return_when=concurrent.futures.FIRST_COMPLETED)
+        return done, pending
+
     try:
-        while pending:
-            with _signals_held():
-                done, pending = concurrent.futures.wait(
-                    pending, timeout=WAIT_STEP, return_when=concurrent.futures.FIRST_COMPLETED)
-            # the finished work first, so the caller counts it before a failed task stops it
-            for future in sorted(done, key=lambda future: future.exception() is not None):
-                yield future.result()
+        yield from _results_in_steps(futures, wait_step)
     except BrokenProcessPool:
         raise WorkerError(
             "a worker process stopped abruptly (killed, or out of memory?); the work it had "
             "finished is kept: run the same command again to continue") from None
+
+
+def _results_in_steps(futures: Sequence[Any],
+                      wait_step: Callable[[set[Any]], tuple[set[Any], set[Any]]]
+                      ) -> Iterator[Any]:
+    """The futures' results as they complete; ``wait_step(pending)`` waits at most
+    :data:`WAIT_STEP` seconds and gives ``(done, pending)``.
+
+    Each step runs with the signals held (:func:`_signals_held`); the finished results of
+    a step come before a failed task's error, so the caller counts the finished work
+    first.
+    """
+    pending = set(futures)
+    while pending:
+        with _signals_held():
+            done, pending = wait_step(pending)
+            outcomes = [_outcome(future) for future in done]  # done: no waiting for a task
+        for value, error in sorted(outcomes, key=lambda outcome: outcome[1] is not None):
+            if error is not None:
+                raise error
+            yield value
+
+
+def _outcome(future: Any) -> tuple[Any, BaseException | None]:
+    try:
+        return future.result(), None
+    except Exception as exc:
+        return None, exc
 
 
 @contextlib.contextmanager
@@ -293,24 +319,12 @@ def _dask_completed(futures: list[Any]) -> Iterator[Any]:
     (the client waits in Python's ``threading`` code too)."""
     from distributed import wait
 
-    pending = set(futures)
-    while pending:
-        with _signals_held():
-            try:
-                done, pending = wait(list(pending), timeout=WAIT_STEP,
-                                     return_when="FIRST_COMPLETED")
-            except TimeoutError:
-                continue
-            outcomes = [_outcome(future) for future in done]  # done: no waiting for a task
-        # the finished work first, so the caller counts it before a failed task stops it
-        for value, error in sorted(outcomes, key=lambda outcome: outcome[1] is not None):
-            if error is not None:
-                raise error
-            yield value
+    def wait_step(pending: set[Any]) -> tuple[set[Any], set[Any]]:
+        try:
+            done, pending = wait(list(pending), timeout=WAIT_STEP,
+                                 return_when="FIRST_COMPLETED")
+        except TimeoutError:
+            return set(), pending
+        return set(done), set(pending)
 
-
-def _outcome(future: Any) -> tuple[Any, BaseException | None]:
-    try:
-        return future.result(), None
-    except Exception as exc:
-        return None, exc
+    return _results_in_steps(futures, wait_step)
