@@ -154,3 +154,10 @@ def test_fit_inspect_export_probe_chain(tmp_path):
     assert "rbm-relu" in result.output and "mfcc" in result.output
     result = runner.invoke(app, ["inspect", str(tmp_path / "missing.npz")])
     assert result.exit_code == 1 and "timbrel: error:" in result.output
+
+
+def test_probe_choose_by_is_refused_with_events(tmp_path):
+    # the choice is of how clips are pooled; a frame probe has no clips to pool
+    result = runner.invoke(app, ["probe", str(tmp_path), "--events", "--choose-by", "origin"])
+    assert result.exit_code == 1
+    assert "--choose-by" in result.output and "--events" in result.output

@@ -10,7 +10,8 @@ import soundfile as sf
 from timbrel import ParameterError
 from timbrel.cache import build_cache
 from timbrel.config import load_config
-from timbrel.evaluation import kmeans_triangle, probe, read_clip_features
+from timbrel.evaluation import (CHOICE_C, CHOICE_POOLS, _choose, kmeans_triangle, probe,
+                                read_clip_features)
 from timbrel.export import export
 from timbrel.pooling import pool_frames
 from timbrel.training import train
@@ -87,6 +88,73 @@ def test_probe_reports_the_pooling_it_was_given(tones, pools):
     score = probe(tones / "ds", baselines=(), pools=pools).scores[0]
     assert score.pooling == ",".join(pools)
     assert score.n_features % len(pools) == 0
+
+
+def test_choice_of_pooling_and_c_matches_scikit_learns_grouped_grid_search():
+    # Source: scikit-learn's GridSearchCV over C with GroupKFold folds, run once per pooling;
+    # the best mean score wins, the first on ties (GridSearchCV's own rule within a grid).
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import GridSearchCV, GroupKFold
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    rng = np.random.default_rng(4)
+    n, d = 90, 6
+    y = np.repeat(np.array(["a", "b", "c"]), n // 3)
+    groups = np.tile(np.array(["o1", "o2", "o3", "o4", "o5", "o6"]), n // 6)
+    signal = (y == "b").astype(float)[:, None] - (y == "c")[:, None]
+    blocks = {"mean": rng.standard_normal((n, d)), "max": rng.standard_normal((n, d)),
+              "std": rng.standard_normal((n, d)) + 0.6 * signal}
+    pooled = {p: np.hstack([blocks[q] for q in p]) for p in CHOICE_POOLS}
+    train_idx = np.arange(n - 12)
+    got = _choose(pooled, y, groups, train_idx, seed=0)
+
+    best, best_score = None, -1.0
+    for p in CHOICE_POOLS:
+        search = GridSearchCV(
+            make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000, random_state=0)),
+            {"logisticregression__C": list(CHOICE_C)}, cv=GroupKFold(3))
+        search.fit(pooled[p][train_idx], y[train_idx], groups=groups[train_idx])
+        if search.best_score_ > best_score:
+            best_score = search.best_score_
+            best = (p, search.best_params_["logisticregression__C"])
+    assert got == best
+    assert "std" in got[0]  # the informative block was found
+
+
+@pytest.fixture(scope="module")
+def tones_by_origin(tones):
+    """The tones exported again with an origin per clip: two per class among the training
+    clips, a third for the test clips."""
+    rows = (tones / "manifest.csv").read_text().splitlines()
+    out = [rows[0] + ",origin"]
+    for row in rows[1:]:
+        index = int(row.split(",")[0][-5])
+        out.append(f"{row},{'o1' if index < 2 else 'o2' if index < 4 else 'o3'}")
+    (tones / "by_origin.csv").write_text("\n".join(out) + "\n")
+    export(tones / "by_origin.csv", tones / "model.npz", tones / "ds_origin", workers=1)
+    return tones / "ds_origin"
+
+
+def test_probe_chooses_pooling_and_c_for_every_feature_set(tones_by_origin):
+    result = probe(tones_by_origin, choose_by="origin")
+    assert "'origin'" in result.chosen_by and "chosen by" in result.table()
+    assert [s.name for s in result.scores] == ["rbm-relu", "mfcc", "logmel", "kmeans-16"]
+    for score in result.scores:
+        pools = tuple(score.pooling.split(","))
+        assert pools in CHOICE_POOLS and score.c in CHOICE_C
+        assert score.n_features % len(pools) == 0
+        assert score.accuracy == pytest.approx(1.0)  # tones octaves apart, as above
+    # without the choice, every feature set keeps C = 1
+    assert {s.c for s in probe(tones_by_origin).scores} == {1.0}
+
+
+def test_probe_choice_needs_two_origins_among_training_clips(tones_by_origin):
+    # every training clip has the same value in "split": one origin, nothing to fold over
+    with pytest.raises(ParameterError, match="at least two origins; found 1"):
+        probe(tones_by_origin, choose_by="split", baselines=())
+    with pytest.raises(ParameterError, match="no column"):
+        probe(tones_by_origin, choose_by="speaker", baselines=())
 
 
 def test_kmeans_triangle_code_from_scikit_learns_distances():

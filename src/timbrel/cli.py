@@ -24,7 +24,7 @@ import typer
 from typer.core import TyperGroup
 
 from . import __version__
-from ._errors import TimbrelError
+from ._errors import ParameterError, TimbrelError
 
 EXIT_ERROR = 1
 EXIT_FAILED_FILES = 3
@@ -297,6 +297,11 @@ def probe_command(
         "--audio-root", help="Where the clips' audio lives, a path or a URL (default: as "
         "recorded at export).")
     ] = None,
+    choose_by: Annotated[str | None, typer.Option(
+        "--choose-by", help="Column naming each clip's origin (speaker, sound set, site): "
+        "every feature set's pooling and C are then chosen by cross-validation over the "
+        "training clips' origins, and --pool is not used.")
+    ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
     events: Annotated[bool, typer.Option(
         "--events", help="Probe frames instead of clips: detect the exported events (export "
@@ -307,6 +312,10 @@ def probe_command(
 
     if events:
         from .detection import probe_events
+
+        if choose_by:
+            raise ParameterError("--choose-by chooses how clips are pooled; it does not "
+                                 "apply with --events")
 
         # the k-means peer codes clips, not frames: a frame probe compares MFCC and log-mel
         peers = [b.strip() for b in baseline.split(",") if b.strip() and b.strip() != "kmeans"]
@@ -319,7 +328,7 @@ def probe_command(
     result = probe(dataset, label=label, split_column=split_column or None,
                    baselines=[b.strip() for b in baseline.split(",") if b.strip()],
                    pools=[p.strip() for p in pool.split(",") if p.strip()], folds=folds,
-                   audio_root=audio_root)
+                   audio_root=audio_root, choose_by=choose_by or None)
     typer.echo(json.dumps(result.to_dict(), indent=1) if as_json else result.table())
 
 

@@ -2,17 +2,19 @@
 
 :func:`probe` pools each clip's frame features from an exported dataset, trains a
 standardised multinomial logistic regression (scikit-learn) on the ``train`` split and
-reports on the ``test`` split, side by side with two baselines computed from the same
-audio in the same run: MFCCs with deltas and the model's own log-mel frames. Without a
-split column it uses stratified k-fold over clips, so frames of one clip never sit on
-both sides.
+reports on the ``test`` split, side by side with peers computed from the same audio in
+the same run: MFCCs with deltas, the model's own log-mel frames and a k-means code.
+Without a split column it uses stratified k-fold over clips, so frames of one clip never
+sit on both sides. Given a column naming each clip's origin (speaker, sound set, site),
+every feature set alike gets its pooling and regularisation chosen by cross-validation
+over the training clips' origins, so no feature set wins by a setting fitted to another.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import json
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -23,21 +25,32 @@ from ._errors import ParameterError
 from .audio import load
 from .frontend import BandStats, FrontEnd, stack_context
 from .pipeline import whiten
-from .pooling import PROBE_POOLS, ClipPool, pool_frames
+from .pooling import POOLS, PROBE_POOLS, ClipPool, check_pools, pool_frames
 from .windows import zca_whitening
 
-__all__ = ["BASELINES", "BASELINE_POOLS", "KMEANS_EPSILON", "ProbeResult", "ProbeScore",
-           "kmeans_triangle", "probe", "read_clip_features"]
+__all__ = ["BASELINES", "BASELINE_POOLS", "CHOICE_C", "CHOICE_POOLS", "KMEANS_EPSILON",
+           "ProbeResult", "ProbeScore", "kmeans_triangle", "probe", "read_clip_features"]
 
 BASELINES = ("mfcc", "logmel", "kmeans")
 #: How each peer pools its frames over a clip: MFCCs by mean and spread, as usual; the
 #: log-mel frames by mean and maximum; the k-means code as the learned features are
 #: pooled (``pools``), so that learning the features is the only difference.
-BASELINE_POOLS = {"mfcc": ("mean", "std"), "logmel": ("mean", "max")}
+BASELINE_POOLS: dict[str, tuple[str, ...]] = {"mfcc": ("mean", "std"), "logmel": ("mean", "max")}
 N_MFCC = 20
 #: Regulariser of the k-means peer's whitening, and the windows it is fitted on at most.
 KMEANS_EPSILON = 0.1
 KMEANS_WINDOWS = 50000
+#: The probe's inverse regularisation (scikit-learn's ``C``) when it is not chosen.
+PROBE_C = 1.0
+#: What the probe chooses between for each feature set when told the clips' origins
+#: (``choose_by``): poolings over the clip, and ``C``, in order of preference on ties.
+CHOICE_POOLS = (("max",), ("mean", "max"), ("max", "std"), ("mean", "std"))
+CHOICE_C = (1.0, 0.1, 0.01)
+#: Folds over the training clips' origins for that choice (fewer if fewer origins).
+CHOICE_FOLDS = 3
+
+Pooled = dict[tuple[str, ...], np.ndarray]
+"""One feature set pooled each way it may be: pooling -> array (n_clips, n_features)."""
 
 
 def open_dataset(dataset: str | Path) -> Any:
@@ -113,6 +126,7 @@ class ProbeScore:
 
     name: str
     pooling: str  # the poolings over each clip, comma-separated (e.g. "max", "mean,std")
+    c: float  # the logistic regression's inverse regularisation
     n_features: int
     accuracy: float
     macro_f1: float
@@ -129,6 +143,7 @@ class ProbeResult:
     n_train: int
     n_test: int
     scores: list[ProbeScore]
+    chosen_by: str = ""  # how pooling and C were chosen, if they were
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able form."""
@@ -139,11 +154,14 @@ class ProbeResult:
         counts = (f"{self.n_train} train / {self.n_test} test clips" if "fold" not in self.scheme
                   else f"{self.n_test} clips, each scored once")
         lines = [f"probe: multinomial logistic regression, {self.scheme}; "
-                 f"{counts}, {len(self.classes)} classes",
-                 f"{'features':<16}{'pooled':<10}{'dims':>6}{'accuracy':>10}{'macro-F1':>10}"]
+                 f"{counts}, {len(self.classes)} classes"]
+        if self.chosen_by:
+            lines.append(f"pooling and C of each feature set chosen by {self.chosen_by}")
+        lines.append(f"{'features':<16}{'pooled':<10}{'C':>6}{'dims':>6}{'accuracy':>10}"
+                     f"{'macro-F1':>10}")
         for s in self.scores:
-            lines.append(f"{s.name:<16}{s.pooling:<10}{s.n_features:>6}{s.accuracy:>10.3f}"
-                         f"{s.macro_f1:>10.3f}")
+            lines.append(f"{s.name:<16}{s.pooling:<10}{s.c:>6g}{s.n_features:>6}"
+                         f"{s.accuracy:>10.3f}{s.macro_f1:>10.3f}")
         lines.append("per-class recall:")
         width = max(len(c) for c in self.classes) + 2
         lines.append(" " * width + "".join(f"{s.name[:12]:>14}" for s in self.scores))
@@ -208,7 +226,7 @@ def kmeans_triangle(windows: np.ndarray, centres: np.ndarray) -> np.ndarray:
 
 
 def _kmeans_features(frames: Sequence[np.ndarray], train_idx: np.ndarray, *, context: int,
-                     k: int, pools: Sequence[str], seed: int) -> np.ndarray:
+                     k: int, pools: Sequence[tuple[str, ...]], seed: int) -> Pooled:
     """The k-means peer: context windows of the clips, standardised and ZCA-whitened with
     statistics of the training clips, coded by k-means centres fitted on those windows."""
     from sklearn.cluster import MiniBatchKMeans
@@ -225,58 +243,115 @@ def _kmeans_features(frames: Sequence[np.ndarray], train_idx: np.ndarray, *, con
     centres = MiniBatchKMeans(n_clusters=min(k, len(sample)), random_state=seed, n_init=1,
                               batch_size=4096, max_iter=50).fit(
         whiten(sample, mean, matrix)).cluster_centers_
-    return np.array([pool_frames(kmeans_triangle(whiten(w, mean, matrix), centres), pools)
-                     for w in windows])
+    return _pool_each_way((kmeans_triangle(whiten(w, mean, matrix), centres) for w in windows),
+                          pools)
 
 
-def _baseline_features(kind: str, paths: Sequence[str | Path], fe: FrontEnd) -> np.ndarray:
+def _pool_each_way(clips: Iterable[np.ndarray], pools: Sequence[tuple[str, ...]]) -> Pooled:
+    """Each clip's frames (n_frames, n_features) pooled in each of the ways asked."""
+    rows: dict[tuple[str, ...], list[np.ndarray]] = {p: [] for p in pools}
+    for frames in clips:
+        for p in pools:
+            rows[p].append(pool_frames(frames, p))
+    return {p: np.array(r) for p, r in rows.items()}
+
+
+def _baseline_features(kind: str, paths: Sequence[str | Path], fe: FrontEnd,
+                       pools: Sequence[tuple[str, ...]]) -> Pooled:
     if kind == "logmel":
-        return np.array([pool_frames(f, BASELINE_POOLS["logmel"]) for f in _frames_of(paths, fe)])
-    return np.array([pool_frames(_mfcc(p, fe), BASELINE_POOLS["mfcc"]) for p in paths])
+        return _pool_each_way(_frames_of(paths, fe), pools)
+    return _pool_each_way((_mfcc(p, fe) for p in paths), pools)
 
 
-def _score(name: str, pools: Sequence[str], X: np.ndarray, y: np.ndarray,
-           classes: list[str], splits: list[tuple[np.ndarray, np.ndarray]], seed: int
-           ) -> ProbeScore:
+def _split_pooled(X: np.ndarray, union: Sequence[str], pools: Sequence[tuple[str, ...]]
+                  ) -> Pooled:
+    """Poolings picked out of clip features pooled as ``union`` (blocks side by side)."""
+    blocks = dict(zip(union, np.split(X, len(union), axis=1), strict=True))
+    return {p: np.hstack([blocks[q] for q in p]) for p in pools}
+
+
+def _accuracy(X: np.ndarray, y: np.ndarray, fit: np.ndarray, held: np.ndarray, c: float,
+              seed: int) -> tuple[np.ndarray, float]:
+    """Predictions for ``held`` of the standardised logistic regression fitted on ``fit``,
+    and their accuracy."""
     from sklearn.linear_model import LogisticRegression
-    from sklearn.metrics import confusion_matrix, f1_score, recall_score
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
 
-    truth, predicted = [], []
+    model = make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000, C=c,
+                                                               random_state=seed))
+    model.fit(X[fit], y[fit])
+    predicted = model.predict(X[held])
+    return predicted, float(np.mean(predicted == y[held]))
+
+
+def _choose(pooled: Pooled, y: np.ndarray, groups: np.ndarray, train_idx: np.ndarray,
+            seed: int) -> tuple[tuple[str, ...], float]:
+    """The pooling and C with the best mean accuracy over folds of the training clips that
+    keep each origin (``groups``) on one side (scikit-learn's ``GroupKFold``)."""
+    from sklearn.model_selection import GroupKFold
+
+    n_groups = len(set(groups[train_idx].tolist()))
+    if n_groups < 2:
+        raise ParameterError("choosing pooling and C needs training clips of at least two "
+                             f"origins; found {n_groups}")
+    folds = list(GroupKFold(min(CHOICE_FOLDS, n_groups)).split(
+        train_idx, y[train_idx], groups[train_idx]))
+
+    def inner(option: tuple[tuple[str, ...], float]) -> float:
+        return float(np.mean([_accuracy(pooled[option[0]], y, train_idx[a], train_idx[b],
+                                        option[1], seed)[1] for a, b in folds]))
+
+    return max(((p, c) for p in pooled for c in CHOICE_C), key=inner)
+
+
+def _score(name: str, pooled: Pooled, y: np.ndarray, classes: list[str],
+           splits: list[tuple[np.ndarray, np.ndarray]], seed: int,
+           groups: np.ndarray | None = None) -> ProbeScore:
+    """Score one feature set over the splits: with ``groups``, pooling and C chosen on each
+    split's training clips (:func:`_choose`); otherwise its one pooling with C = 1."""
+    from sklearn.metrics import confusion_matrix, f1_score, recall_score
+
+    truth, predicted, options = [], [], []
     for train_idx, test_idx in splits:
-        model = make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000, C=1.0,
-                                                                   random_state=seed))
-        model.fit(X[train_idx], y[train_idx])
+        option = _choose(pooled, y, groups, train_idx, seed) if groups is not None \
+            else (next(iter(pooled)), PROBE_C)
         truth.append(y[test_idx])
-        predicted.append(model.predict(X[test_idx]))
+        predicted.append(_accuracy(pooled[option[0]], y, train_idx, test_idx, option[1],
+                                   seed)[0])
+        options.append(option)
     t, p = np.concatenate(truth), np.concatenate(predicted)
     recall = recall_score(t, p, labels=classes, average=None, zero_division=0)
+    # over several folds, the option chosen most often (the first on ties) is reported
+    pools, inverse = max(options, key=options.count)
     return ProbeScore(
-        name=name, pooling=",".join(pools), n_features=int(X.shape[1]),
+        name=name, pooling=",".join(pools), c=inverse, n_features=int(pooled[pools].shape[1]),
         accuracy=float(np.mean(t == p)),
         macro_f1=float(f1_score(t, p, labels=classes, average="macro", zero_division=0)),
         per_class_recall={c: float(r) for c, r in zip(classes, recall, strict=True)},
         confusion=confusion_matrix(t, p, labels=classes).tolist())
 
 
-def _kmeans_score(paths: Sequence[str | Path], fe: FrontEnd, k: int, pools: Sequence[str],
-                  y: np.ndarray, classes: list[str],
-                  splits: list[tuple[np.ndarray, np.ndarray]], seed: int) -> ProbeScore:
+def _kmeans_score(paths: Sequence[str | Path], fe: FrontEnd, k: int,
+                  pools: Sequence[tuple[str, ...]], y: np.ndarray, classes: list[str],
+                  splits: list[tuple[np.ndarray, np.ndarray]], seed: int,
+                  groups: np.ndarray | None) -> ProbeScore:
     """The k-means peer, fitted on each split's training clips alone."""
     frames = _frames_of(paths, fe)
     parts = []
     for train_idx, test_idx in splits:
-        X = _kmeans_features(frames, train_idx, context=fe.config.context, k=k, pools=pools,
-                             seed=seed)
-        parts.append(_score(f"kmeans-{k}", pools, X, y, classes, [(train_idx, test_idx)], seed))
+        pooled = _kmeans_features(frames, train_idx, context=fe.config.context, k=k,
+                                  pools=pools, seed=seed)
+        parts.append(_score(f"kmeans-{k}", pooled, y, classes, [(train_idx, test_idx)], seed,
+                            groups))
     if len(parts) == 1:
         return parts[0]
     return _merge_folds(parts, classes)
 
 
 def _merge_folds(parts: list[ProbeScore], classes: list[str]) -> ProbeScore:
-    """One score from per-fold scores (each test clip counted once)."""
+    """One score from per-fold scores (each test clip counted once; the pooling and C
+    reported are those chosen most often)."""
     confusion = np.sum([np.array(p.confusion) for p in parts], axis=0)
     n = confusion.sum()
     recall = {c: float(confusion[i, i] / max(confusion[i].sum(), 1))
@@ -285,8 +360,9 @@ def _merge_folds(parts: list[ProbeScore], classes: list[str]) -> ProbeScore:
     rec = np.array(list(recall.values()))
     f1 = np.where(precision + rec > 0, 2 * precision * rec / np.maximum(precision + rec, 1e-12),
                   0.0)
-    first = parts[0]
-    return ProbeScore(name=first.name, pooling=first.pooling, n_features=first.n_features,
+    options = [(p.pooling, p.c, p.n_features) for p in parts]
+    pooling, inverse, n_features = max(options, key=options.count)
+    return ProbeScore(name=parts[0].name, pooling=pooling, c=inverse, n_features=n_features,
                       accuracy=float(np.trace(confusion) / n), macro_f1=float(f1.mean()),
                       per_class_recall=recall, confusion=confusion.tolist())
 
@@ -301,6 +377,7 @@ def probe(
     folds: int = 5,
     seed: int = 0,
     audio_root: str | Path | None = None,
+    choose_by: str | None = None,
 ) -> ProbeResult:
     """Train and score a probe classifier on learned features and on baselines.
 
@@ -322,24 +399,48 @@ def probe(
         2011), pooled as the learned features.
     pools : sequence of {"mean", "max", "std"}, default ("max",)
         Pooling of the learned frame features over each clip (see :data:`PROBE_POOLS`).
+        Not used with ``choose_by``.
     folds : int >= 2, default 5
     seed : int, default 0
     audio_root : str or Path, optional
         Where the clips' audio lives (for the baselines); default: the folder recorded in
         the dataset at export.
+    choose_by : str, optional
+        Column naming each clip's origin (speaker, sound set, recording site). Given it,
+        every feature set alike, learned or peer, gets its pooling (one of
+        :data:`CHOICE_POOLS`) and C (one of :data:`CHOICE_C`) chosen by the best mean
+        accuracy over 3 folds of the training clips that keep each origin on one side,
+        then is refitted on all training clips with that choice. Held-out clips play no
+        part in the choice. Without it, the learned and k-means features are pooled by
+        ``pools`` and the peers as :data:`BASELINE_POOLS` says, all with C = 1.
 
     Returns
     -------
     ProbeResult
         ``scores[0]`` is the learned features', then one per baseline.
+
+    Raises
+    ------
+    ParameterError
+        If a column is missing, the labels hold one class, the splits are empty, or
+        ``choose_by`` leaves fewer than two origins among the training clips.
+
+    Examples
+    --------
+    >>> result = probe("out/features", choose_by="origin")  # doctest: +SKIP
+    >>> print(result.table())  # doctest: +SKIP
     """
     bad = [b for b in baselines if b not in BASELINES]
     if bad:
         raise ParameterError(f"baseline(s) {bad} not among {', '.join(BASELINES)}")
     names = open_dataset(dataset).schema.names
     split_name = split_column if split_column is not None and split_column in names else None
-    columns = [label, *([split_name] if split_name is not None else [])]
-    sources, X, extra, meta = read_clip_features(dataset, pools, columns=columns)
+    columns = list(dict.fromkeys([label, *([split_name] if split_name is not None else []),
+                                  *([choose_by] if choose_by is not None else [])]))
+    union = POOLS if choose_by is not None else tuple(check_pools(pools))
+    sources, X, extra, meta = read_clip_features(dataset, union, columns=columns)
+    own = CHOICE_POOLS if choose_by is not None else [tuple(check_pools(pools))]
+    groups = np.array(extra[choose_by], dtype=object) if choose_by is not None else None
     y = np.array(extra[label])
     classes = sorted(set(y.tolist()))
     if len(classes) < 2:
@@ -364,7 +465,8 @@ def probe(
                                  "cannot cross-validate")
         splits = list(StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(X, y))
         scheme = f"stratified {k}-fold over clips"
-    scores = [_score(f"rbm-{meta.get('hidden', '?')}", pools, X, y, classes, splits, seed)]
+    scores = [_score(f"rbm-{meta.get('hidden', '?')}", _split_pooled(X, union, own), y,
+                     classes, splits, seed, groups)]
     if baselines:
         root = str(audio_root or meta.get("audio_root", "."))
         from .config import FrontEndConfig
@@ -373,11 +475,14 @@ def probe(
         paths = [store.join(root, s) for s in sources]
         for kind in baselines:
             if kind == "kmeans":
-                scores.append(_kmeans_score(paths, fe, int(meta["n_hidden"]), pools, y, classes,
-                                            splits, seed))
+                scores.append(_kmeans_score(paths, fe, int(meta["n_hidden"]), own, y, classes,
+                                            splits, seed, groups))
             else:
-                scores.append(_score(kind, BASELINE_POOLS[kind],
-                                     _baseline_features(kind, paths, fe), y, classes, splits,
-                                     seed))
+                theirs = own if choose_by is not None else [BASELINE_POOLS[kind]]
+                scores.append(_score(kind, _baseline_features(kind, paths, fe, theirs), y,
+                                     classes, splits, seed, groups))
+    chosen_by = "" if choose_by is None else \
+        f"{CHOICE_FOLDS}-fold cross-validation over the training clips' {choose_by!r}"
     return ProbeResult(classes=classes, scheme=scheme, n_train=len(splits[0][0]),
-                       n_test=int(sum(len(t) for _, t in splits)), scores=scores)
+                       n_test=int(sum(len(t) for _, t in splits)), scores=scores,
+                       chosen_by=chosen_by)
