@@ -54,7 +54,8 @@ def _train_manifest(folder: Path) -> Path:
 
 def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[str],
                work: Path, *, relu_only: bool = False, stack: bool = False,
-               no_binary: bool = False, pools: list[str] | None = None) -> dict:
+               no_binary: bool = False, pools: list[str] | None = None,
+               choose_by: str | None = None) -> dict:
     from timbrel.cache import build_cache
     from timbrel.config import load_config
     from timbrel.evaluation import probe
@@ -66,6 +67,7 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
     cache = work / domain / "cache"
     build_cache(_train_manifest(folder), cache, config=load_config(overrides=overrides))
     scores: dict[str, dict[str, list[float]]] = {v: {} for v in views}
+    choices: dict[str, dict[str, list[str]]] = {v: {} for v in views}
     seconds: list[float] = []
     for seed in seeds:
         for hidden in ("relu",) if relu_only or no_binary else ("relu", "binary"):
@@ -82,21 +84,24 @@ def run_domain(domain: str, views: list[str], seeds: list[int], overrides: list[
                 peers = PEERS if hidden == "relu" and not relu_only else ()
                 for i, pool in enumerate(pools or [None]):
                     # MFCC and log-mel pool their own way: scored with the first pooling
-                    result = probe(dataset, seed=seed, **_pools(pool),
+                    result = probe(dataset, seed=seed, **_pools(pool), choose_by=choose_by,
                                    baselines=[p for p in peers if i == 0 or p == "kmeans"])
                     for score in result.scores:
                         name = f"rbm-{hidden}" if score.name.startswith("rbm") else \
                             score.name.split("-")[0]
-                        scores[view].setdefault(_pooled(name, pool, pools),
-                                                []).append(score.accuracy)
+                        name = _pooled(name, pool, pools)
+                        scores[view].setdefault(name, []).append(score.accuracy)
+                        choices[view].setdefault(name, []).append(
+                            f"{score.pooling} C={score.c:g}")
             if stack and hidden == "relu":
                 _score_stack(cache, model, config, view_manifests, views, seed,
-                             work / domain, scores, pools)
-    return {"scores": scores, "train_seconds_relu": seconds}
+                             work / domain, scores, pools, choose_by)
+    return {"scores": scores, "choices": choices, "train_seconds_relu": seconds}
 
 
 def _score_stack(cache: Path, lower: Path, config, view_manifests: dict, views: list[str],
-                 seed: int, work: Path, scores: dict, pools: list[str] | None) -> None:
+                 seed: int, work: Path, scores: dict, pools: list[str] | None,
+                 choose_by: str | None) -> None:
     """A second layer (same settings) trained on the relu model's activations, scored on
     its own features (``rbm-stack``) and on both layers' side by side (``rbm-stack-all``)."""
     from timbrel.evaluation import probe
@@ -110,7 +115,8 @@ def _score_stack(cache: Path, lower: Path, config, view_manifests: dict, views: 
             dataset = work / f"stack-{seed}-{view}-{layer}"
             export(view_manifests[view], upper, dataset, overwrite=True, layer=layer)
             for pool in pools or [None]:
-                result = probe(dataset, baselines=(), seed=seed, **_pools(pool))
+                result = probe(dataset, baselines=(), seed=seed, **_pools(pool),
+                               choose_by=choose_by)
                 scores[view].setdefault(_pooled(name, pool, pools),
                                         []).append(result.scores[0].accuracy)
 
@@ -195,6 +201,11 @@ def main(argv: list[str] | None = None) -> dict:
                         help="the probe's pooling of the learned and k-means features "
                              "(default: the probe's own, max); repeat to compare poolings "
                              "on the same models")
+    parser.add_argument("--choose-by", default="origin", metavar="COLUMN",
+                        help="the probe chooses each feature set's pooling and C by "
+                             "cross-validation over this column of the training clips "
+                             "(default: origin, the sound's source); '' to use --pool and "
+                             "C = 1 instead")
     parser.add_argument("--json", type=Path)
     args = parser.parse_args(argv)
     views = args.views.split(",")
@@ -207,10 +218,12 @@ def main(argv: list[str] | None = None) -> dict:
             began = time.perf_counter()
             results[domain] = run_domain(domain, views, seeds, overrides, work,
                                          relu_only=args.relu_only, stack=args.stack,
-                                         no_binary=args.no_binary, pools=args.pool)
+                                         no_binary=args.no_binary, pools=args.pool,
+                                         choose_by=args.choose_by or None)
             print(f"{domain}: {time.perf_counter() - began:.0f} s")
         demo_seconds = None if args.no_demo else demo_fit_seconds(work)
-    out = {"overrides": overrides, "pools": args.pool, "seeds": seeds, "domains": results,
+    out = {"overrides": overrides, "pools": args.pool, "choose_by": args.choose_by,
+           "seeds": seeds, "domains": results,
            "tables": {}, "targets": {}, "demo_fit_seconds": demo_seconds}
     if demo_seconds is not None:
         print(f"default fit on the demo cache: {demo_seconds:.1f} s (target under 60 s)")
