@@ -189,9 +189,10 @@ class TrainingConfig:
     whiten: str = _field(
         "none", "decorrelate the context windows before the model: 'none' or 'zca'",
         choices=WHITENINGS)
+    # on by default: chosen on the validation splits of bench/domains.py (DEVELOPERS.md)
     window_contrast: bool = _field(
-        False, "subtract each context window's mean and divide by its spread, before "
-        "whitening and the model")
+        True, "subtract each context window's mean and divide by its spread, before "
+        "whitening and the model (false keeps a likelihood for `timbrel score`)")
     whiten_epsilon: float = _field(
         0.1, "added to each eigenvalue of the windows' covariance before whitening",
         low=1e-6, high=100.0)
