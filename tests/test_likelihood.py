@@ -352,8 +352,10 @@ def binary_model(small_cache):
 
 
 def _fit_binary(cache, name, *settings):
-    """Six binary hidden units fitted for 2 epochs on ``cache``, ``--set`` each setting."""
+    """Six binary hidden units fitted for 2 epochs on ``cache``, ``--set`` each setting
+    (without contrast normalisation unless a setting asks for it: see the next test)."""
     model = cache.parent / name
+    settings = ("training.window_contrast=false", *settings)
     extra = [arg for setting in settings for arg in ("--set", setting)]
     result = runner.invoke(app, ["fit", str(cache), "--out", str(model), "--n-hidden", "6",
                                  "--hidden", "binary", "--epochs", "2", "--seed", "1", "-q",
@@ -367,6 +369,9 @@ def test_a_contrast_normalised_model_is_not_scored(small_cache):
     # and its louder copies map to one point), so no density of the windows follows.
     model = _fit_binary(small_cache, "contrast.npz", "training.window_contrast=true")
     with pytest.raises(ParameterError, match="contrast-normalised"):
+        score(model, small_cache, method="exact")
+    # and the error says how to fit a model that can be scored
+    with pytest.raises(ParameterError, match="training.window_contrast=false"):
         score(model, small_cache, method="exact")
 
 
@@ -419,7 +424,8 @@ def test_score_command_exact_on_the_trainers_windows(small_cache, binary_model):
 def test_score_command_runs_ais_for_rectified_units(small_cache):
     model = small_cache.parent / "relu.npz"
     assert runner.invoke(app, ["fit", str(small_cache), "--out", str(model), "--n-hidden", "5",
-                               "--epochs", "1", "--seed", "2", "-q"]).exit_code == 0
+                               "--epochs", "1", "--seed", "2", "-q", "--set",
+                               "training.window_contrast=false"]).exit_code == 0
     result = runner.invoke(app, ["score", str(model), str(small_cache), "--chains", "8",
                                  "--temperatures", "40", "--max-windows", "50", "-q"])
     assert result.exit_code == 0, result.output

@@ -689,7 +689,8 @@ def score(
     if pipe.config.training.window_contrast:
         raise ParameterError(f"{model}: trained on contrast-normalised windows "
                              "(training.window_contrast), a map with no inverse, so the "
-                             "model gives no likelihood of the windows themselves")
+                             "model gives no likelihood of the windows themselves; fit "
+                             "with --set training.window_contrast=false to score")
     frames = FrameCache.open(cache)
     check_config_against_cache(pipe.config, frames)
     rbm = pipe.rbm
