@@ -10,8 +10,14 @@ import soundfile as sf
 from timbrel import ParameterError
 from timbrel.cache import build_cache
 from timbrel.config import load_config
-from timbrel.evaluation import (CHOICE_C, CHOICE_POOLS, _choose, kmeans_triangle, probe,
-                                read_clip_features)
+from timbrel.evaluation import (
+    CHOICE_C,
+    CHOICE_POOLS,
+    _choose,
+    kmeans_triangle,
+    probe,
+    read_clip_features,
+)
 from timbrel.export import export
 from timbrel.pooling import pool_frames
 from timbrel.training import train

@@ -371,7 +371,7 @@ def test_a_contrast_normalised_model_is_not_scored(small_cache):
     with pytest.raises(ParameterError, match="contrast-normalised"):
         score(model, small_cache, method="exact")
     # and the error says how to fit a model that can be scored
-    with pytest.raises(ParameterError, match="training.window_contrast=false"):
+    with pytest.raises(ParameterError, match=r"training\.window_contrast=false"):
         score(model, small_cache, method="exact")
 
 
