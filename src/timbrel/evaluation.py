@@ -248,12 +248,11 @@ def _kmeans_features(frames: Sequence[np.ndarray], train_idx: np.ndarray, *, con
 
 
 def _pool_each_way(clips: Iterable[np.ndarray], pools: Sequence[tuple[str, ...]]) -> Pooled:
-    """Each clip's frames (n_frames, n_features) pooled in each of the ways asked."""
-    rows: dict[tuple[str, ...], list[np.ndarray]] = {p: [] for p in pools}
-    for frames in clips:
-        for p in pools:
-            rows[p].append(pool_frames(frames, p))
-    return {p: np.array(r) for p, r in rows.items()}
+    """Each clip's frames (n_frames, n_features) pooled in each of the ways asked (every
+    pooling computed once per clip, then picked out)."""
+    union = tuple(dict.fromkeys(q for p in pools for q in p))
+    return _split_pooled(np.array([pool_frames(frames, union) for frames in clips]), union,
+                         pools)
 
 
 def _baseline_features(kind: str, paths: Sequence[str | Path], fe: FrontEnd,
