@@ -99,6 +99,21 @@ def test_round_trip_through_dict():
     assert again != Config()
 
 
+def test_stored_configs_lacking_a_later_setting_read_as_they_were_fitted():
+    # a model file or checkpoint without training.window_contrast was fitted before the
+    # setting existed (off); a user's file or a cache starting a new fit gets the default
+    stored = Config().to_dict()
+    del stored["training"]["window_contrast"]
+    assert Config.from_dict(stored).training.window_contrast is True
+    assert Config.from_stored(stored).training.window_contrast is False
+    assert "window_contrast" not in stored["training"]  # the caller's dict is left alone
+    # a stored value, and every other setting, are kept as written
+    on = Config().with_overrides(["training.window_contrast=true", "model.n_hidden=7"])
+    assert Config.from_stored(on.to_dict()) == on
+    with pytest.raises(ConfigError, match="unknown key"):
+        Config.from_stored({"training": {"nope": 1}})
+
+
 def test_frame_key_ignores_context_only():
     base = FrontEndConfig()
     assert dataclasses.replace(base, context=2).frame_key() == base.frame_key()

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from timbrel import ModelFileError
+from timbrel import ConfigError, ModelFileError
 from timbrel.frontend import FrontEnd
 from timbrel.pipeline import describe_model, describe_text, load_pipeline
 
@@ -51,10 +51,15 @@ def test_old_checkpoint_resumes_training(tmp_path):
     from timbrel.training import checkpoint_path, train
 
     make_model_v1.write_audio(tmp_path / "audio")
+    # the settings it was made with: window contrast did not exist yet (off), and a
+    # resume under today's default (on) is refused as another configuration
     config = load_config(None, overrides=make_model_v1.OVERRIDES)
     build_cache(tmp_path / "audio", tmp_path / "cache", config=config)
     out = tmp_path / "model_v1.npz"
     shutil.copy(DATA / "model_v1.checkpoint.npz", checkpoint_path(out))
+    with pytest.raises(ConfigError, match="another configuration"):
+        train(tmp_path / "cache", out, config=config, model={"epochs": 3}, resume=True)
+    config = config.with_overrides(["training.window_contrast=false"])
     result = train(tmp_path / "cache", out, config=config, model={"epochs": 3}, resume=True)
     assert [row["epoch"] for row in result.history] == [1, 2, 3]
     assert "val_recon_error" in result.history[-1]

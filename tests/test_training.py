@@ -89,6 +89,27 @@ def test_same_seed_same_model_and_resume_equals_uninterrupted(tmp_path, cache_di
     np.testing.assert_array_equal(c.sigma_, a.sigma_)
 
 
+def test_a_checkpoint_from_before_window_contrast_resumes_only_as_it_was_fitted(
+        tmp_path, cache_dir):
+    # A checkpoint written before training.window_contrast existed lacks the key and was
+    # fitted without it; resumed under today's default (on) it would continue a model fed
+    # other inputs. Rewrite a checkpoint's header without the key, as such a file reads.
+    from timbrel.model import read_checkpoint, write_checkpoint
+
+    part = tmp_path / "part.npz"
+    off = ["training.window_contrast=false"]
+    train(cache_dir, part, config=_config(epochs=2).with_overrides(off))
+    header, state = read_checkpoint(checkpoint_path(part), advice="")
+    del header["config"]["training"]["window_contrast"]
+    resumed = tmp_path / "resumed.npz"
+    write_checkpoint(checkpoint_path(resumed), state, header)
+    with pytest.raises(ConfigError, match="another configuration"):
+        train(cache_dir, resumed, config=_config(epochs=3), resume=True)
+    result = train(cache_dir, resumed, config=_config(epochs=3).with_overrides(off),
+                   resume=True)
+    assert [h["epoch"] for h in result.history] == [1, 2, 3]
+
+
 def test_divergence_is_rolled_back_and_reported(tmp_path, cache_dir):
     lines = []
     try:

@@ -203,10 +203,7 @@ def load_pipeline(path: str | Path) -> FeaturePipeline:
     model = read_model_file(path)
     meta = dict(model.metadata)
     try:
-        stored = dict(meta["config"])
-        # window_contrast is on by default now; files from before it existed had it off
-        stored["training"] = {"window_contrast": False, **stored.get("training", {})}
-        config = Config.from_dict(stored, source=str(path))
+        config = Config.from_stored(meta["config"], source=str(path))
         band_mean = model.arrays["band_mean"]
         band_scale = model.arrays["band_scale"]
     except KeyError as exc:

@@ -512,7 +512,7 @@ def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> int:
     start_over = "start over without --resume"
     header, state = read_checkpoint(path, advice=start_over)
     try:
-        saved = Config.from_dict(header["config"]).to_dict()
+        saved = Config.from_stored(header["config"], source=str(path)).to_dict()
     except (KeyError, ValueError, AttributeError, TypeError) as exc:
         raise ModelFileError(f"{path}: unusable checkpoint ({exc}); {start_over}") from None
     wanted = config.to_dict()
