@@ -69,6 +69,11 @@ def test_clip_features_equal_pooled_frames_read_by_pyarrow(tones):
         np.testing.assert_allclose(X[i], pool_frames(feats, ("mean", "max")), rtol=1e-6,
                                    atol=1e-6)
     assert extra["label"][0] == "high" and meta["n_hidden"] == 16
+    # a column the reader takes anyway is given once more as asked, not read twice
+    again, Y, extra, _ = read_clip_features(tones / "ds", ("mean", "max"),
+                                            columns=["source", "label"])
+    assert again == sources and extra["source"] == sources
+    np.testing.assert_array_equal(Y, X)
 
 
 def test_probe_separates_tones_and_reports_baselines(tones):
@@ -153,6 +158,9 @@ def test_probe_chooses_pooling_and_c_for_every_feature_set(tones_by_origin):
         assert score.accuracy == pytest.approx(1.0)  # tones octaves apart, as above
     # without the choice, every feature set keeps C = 1
     assert {s.c for s in probe(tones_by_origin).scores} == {1.0}
+    # clips with no shared origin: each clip its own, folded by the source column
+    by_clip = probe(tones_by_origin, choose_by="source", baselines=())
+    assert "'source'" in by_clip.chosen_by and by_clip.scores[0].c in CHOICE_C
 
 
 def test_probe_choice_needs_two_origins_among_training_clips(tones_by_origin):

@@ -98,7 +98,8 @@ def read_clip_features(dataset: str | Path, pools: Sequence[str], *, columns: Se
         else ["features"]
     n_hidden = int(metadata["n_hidden"])
     acc: dict[str, dict[str, Any]] = {}
-    for batch in ds.to_batches(columns=["source", *feature_cols, *columns]):
+    # a requested column may be one read anyway (``source``: each clip its own origin)
+    for batch in ds.to_batches(columns=list(dict.fromkeys(["source", *feature_cols, *columns]))):
         src = batch.column(0).to_numpy(zero_copy_only=False)
         if wide:
             feats = np.column_stack([batch.column(c).to_numpy() for c in feature_cols])
