@@ -21,7 +21,9 @@ step "3/7 export: per-frame features -> $OUT/features (Parquet dataset)"
   --pool mean,max,std --overwrite
 
 step "4/7 probe: learned features beside their peers (MFCC, log-mel, k-means)"
-"$TIMBREL" probe "$OUT/features" --label label --split-column split | tee "$OUT/probe.txt"
+# each demo clip is made apart from the others: its own origin for the choice of pooling and C
+"$TIMBREL" probe "$OUT/features" --label label --split-column split --choose-by source \
+  | tee "$OUT/probe.txt"
 
 step "5/7 events: the annotated soundscapes, frame by frame"
 "$TIMBREL" export demo_audio/soundscapes/manifest.csv --model "$OUT/model.npz" \
