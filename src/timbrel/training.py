@@ -12,6 +12,7 @@ from __future__ import annotations
 import csv
 import dataclasses
 import hashlib
+import json
 import math
 import os
 import posixpath
@@ -507,6 +508,20 @@ def _save_checkpoint(path: Path, rbm: RBM, config: Config, epoch: int) -> None:
     write_checkpoint(path, rbm.get_state(), {"epoch": epoch, "config": config.to_dict()})
 
 
+def _differences(saved: Mapping[str, Any], wanted: Mapping[str, Any], most: int = 4) -> str:
+    """``table.key=VALUE there, VALUE now`` for each setting that differs (values as
+    ``--set`` takes them, in TOML), the first ``most`` of them."""
+    lines = []
+    for table in sorted(set(saved) | set(wanted)):
+        a, b = saved.get(table, {}), wanted.get(table, {})
+        for key in sorted(set(a) | set(b)):
+            if a.get(key) != b.get(key):
+                there, now = (json.dumps(d[key]) if key in d else "unset" for d in (a, b))
+                lines.append(f"{table}.{key}={there} there, {now} now")
+    more = f", and {len(lines) - most} more" if len(lines) > most else ""
+    return "; ".join(lines[:most]) + more
+
+
 def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> int:
     """Restore the training state of a checkpoint into ``rbm``; return its epoch."""
     start_over = "start over without --resume"
@@ -520,8 +535,9 @@ def _load_checkpoint(path: Path, rbm: RBM, config: Config) -> int:
     saved["model"].pop("epochs", None)
     wanted["model"].pop("epochs", None)
     if saved != wanted:
-        raise ConfigError(f"{path}: the checkpoint was made with another configuration; "
-                          f"resume with the same settings or {start_over}")
+        raise ConfigError(f"{path}: the checkpoint was made with another configuration "
+                          f"({_differences(saved, wanted)}); resume with the same settings "
+                          f"or {start_over}")
     try:
         rbm.set_state(state)
         if "history" in header:  # written before the trainer kept one history
