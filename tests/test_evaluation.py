@@ -14,6 +14,7 @@ from timbrel.evaluation import (
     CHOICE_C,
     CHOICE_POOLS,
     _choose,
+    _cross_splits,
     kmeans_triangle,
     probe,
     read_clip_features,
@@ -161,6 +162,36 @@ def test_probe_chooses_pooling_and_c_for_every_feature_set(tones_by_origin):
     # clips with no shared origin: each clip its own, folded by the source column
     by_clip = probe(tones_by_origin, choose_by="source", baselines=())
     assert "'source'" in by_clip.chosen_by and by_clip.scores[0].c in CHOICE_C
+
+
+def test_folds_without_a_split_column_keep_each_origin_on_one_side():
+    # 6 origins of 4 clips, 3 classes: every clip is tested once, no origin is on both
+    # sides of a fold, and every fold holds each class on both sides (stratified)
+    y = np.array(["a", "b", "c", "a"] * 6)
+    groups = np.repeat([f"o{i}" for i in range(6)], 4).astype(object)
+    splits, scheme = _cross_splits(y, groups, 5, 0, dataset="ds", group_name="origin")
+    assert len(splits) == 5 and "'origin' on one side" in scheme
+    assert sorted(np.concatenate([test for _, test in splits]).tolist()) == list(range(24))
+    for train_idx, test_idx in splits:
+        assert not set(groups[train_idx]) & set(groups[test_idx])
+        assert set(y[train_idx]) == set(y[test_idx]) == {"a", "b", "c"}
+    # without origins: scikit-learn's StratifiedKFold, as before
+    from sklearn.model_selection import StratifiedKFold
+
+    plain, _ = _cross_splits(y, None, 5, 0, dataset="ds", group_name=None)
+    expected = StratifiedKFold(5, shuffle=True, random_state=0).split(np.zeros(24), y)
+    for (a, b), (c, d) in zip(plain, expected, strict=True):
+        np.testing.assert_array_equal(a, c)
+        np.testing.assert_array_equal(b, d)
+    with pytest.raises(ParameterError, match="one origin"):
+        _cross_splits(y, np.array(["x"] * 24, dtype=object), 5, 0, dataset="ds",
+                      group_name="origin")
+
+
+def test_probe_without_a_split_column_folds_by_origin(tones_by_origin):
+    result = probe(tones_by_origin, split_column=None, choose_by="origin", baselines=())
+    assert "3-fold over clips, each 'origin' on one side" in result.table()
+    assert result.scores[0].c in CHOICE_C
 
 
 def test_probe_choice_needs_two_origins_among_training_clips(tones_by_origin):

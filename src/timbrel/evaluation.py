@@ -367,6 +367,34 @@ def _merge_folds(parts: list[ProbeScore], classes: list[str]) -> ProbeScore:
                       per_class_recall=recall, confusion=confusion.tolist())
 
 
+def _cross_splits(y: np.ndarray, groups: np.ndarray | None, folds: int, seed: int, *,
+                  dataset: str | Path, group_name: str | None
+                  ) -> tuple[list[tuple[np.ndarray, np.ndarray]], str]:
+    """Folds over clips, stratified by class, for a dataset with no train/test column; with
+    ``groups`` each origin stays on one side of every fold (scikit-learn's
+    ``StratifiedGroupKFold``), as in the choice inside each fold.
+
+    Returns the ``(train, test)`` index pairs and a phrase saying how they were made.
+    """
+    from sklearn.model_selection import StratifiedGroupKFold, StratifiedKFold
+
+    if folds < 2:
+        raise ParameterError(f"folds = {folds} must be >= 2")
+    k = int(min(folds, min(np.unique(y, return_counts=True)[1])))
+    if k < 2:
+        raise ParameterError(f"{dataset}: a class has fewer than 2 clips; cannot cross-validate")
+    if groups is None:
+        cv = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed)
+        return list(cv.split(y, y)), f"stratified {k}-fold over clips"
+    k = min(k, len(set(groups.tolist())))
+    if k < 2:
+        raise ParameterError(f"{dataset}: column {group_name!r} names one origin; folds "
+                             "that keep each origin on one side need at least two")
+    cv = StratifiedGroupKFold(n_splits=k, shuffle=True, random_state=seed)
+    return (list(cv.split(y, y, groups)),
+            f"stratified {k}-fold over clips, each {group_name!r} on one side")
+
+
 def probe(
     dataset: str | Path,
     *,
@@ -389,7 +417,8 @@ def probe(
         Column holding each clip's class.
     split_column : str or None, default "split"
         Column with ``train`` / ``test`` per clip. If None or absent, stratified
-        ``folds``-fold cross-validation over clips is used instead.
+        ``folds``-fold cross-validation over clips is used instead (with ``choose_by``,
+        folds that keep each origin on one side).
     baselines : sequence of {"mfcc", "logmel", "kmeans"}, default all three
         Peers computed from the same audio in the same run, through the same classifier:
         MFCCs (20) with deltas, mean- and std-pooled; the model's own log-mel frames,
@@ -454,17 +483,8 @@ def probe(
         splits = [(train_idx, test_idx)]
         scheme = f"train/test from column {split_name!r}"
     else:
-        from sklearn.model_selection import StratifiedKFold
-
-        if folds < 2:
-            raise ParameterError(f"folds = {folds} must be >= 2")
-        counts = min(np.unique(y, return_counts=True)[1])
-        k = int(min(folds, counts))
-        if k < 2:
-            raise ParameterError(f"{dataset}: a class has fewer than 2 clips; "
-                                 "cannot cross-validate")
-        splits = list(StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(X, y))
-        scheme = f"stratified {k}-fold over clips"
+        splits, scheme = _cross_splits(y, groups, folds, seed, dataset=dataset,
+                                       group_name=choose_by)
     scores = [_score(f"rbm-{meta.get('hidden', '?')}", _split_pooled(X, union, own), y,
                      classes, splits, seed, groups)]
     if baselines:
