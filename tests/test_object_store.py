@@ -22,6 +22,7 @@ import pyarrow.dataset as pads
 import pytest
 
 import _s3server
+from timbrel import ParameterError
 from timbrel.cache import FrameCache, build_cache
 from timbrel.config import load_config
 from timbrel.evaluation import probe
@@ -177,6 +178,30 @@ def test_missing_credentials_are_one_line(s3, words, tmp_path):
     assert run.returncode == 1
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1 and "no credentials" in lines[0], run.stderr
+
+
+def test_an_annotation_table_in_the_store_reads_as_the_local_one(s3, tmp_path):
+    from timbrel.events import read_events
+
+    table = tmp_path / "events.tsv"
+    table.write_text("a.wav\t0.5\t1.5\tdog\na.wav\t2.0\t1.0\tcar\nb.wav\t0\t3\tcar\n")
+    _s3server.upload_folder(s3, str(tmp_path), f"s3://{BUCKET}/tables")
+    assert read_events(f"s3://{BUCKET}/tables/events.tsv") == read_events(table)
+    with pytest.raises(ParameterError, match=rf"s3://{BUCKET}/tables/nope.tsv: cannot read"):
+        read_events(f"s3://{BUCKET}/tables/nope.tsv")
+
+
+def test_a_missing_object_is_not_called_a_missing_bucket(s3):
+    # the bucket's name holds the word "bucket": the reason must come from the error, not
+    # from the name (it once said "no such bucket" for a missing object here)
+    from timbrel.store import read_bytes
+
+    _s3server.make_bucket(s3, "my-bucket-of-tables")
+    with pytest.raises(StoreError, match=r"s3://my-bucket-of-tables/none.tsv: cannot read: "
+                                         r"no such object$"):
+        read_bytes("s3://my-bucket-of-tables/none.tsv")
+    with pytest.raises(StoreError, match=r"no such bucket$"):
+        read_bytes("s3://no-bucket-here/none.tsv")
 
 
 def test_store_errors_name_the_url(s3):

@@ -237,9 +237,10 @@ def export_command(
     layer: Annotated[Layer, typer.Option(
         "--layer", help="A stacked model's layer: top, first, or all side by side.")
     ] = Layer.top,
-    events: Annotated[Path | None, typer.Option(
-        "--events", exists=True, dir_okay=False,
-        help="Annotation table (file onset offset label): adds each frame's event labels.")
+    events: Annotated[str | None, typer.Option(
+        "--events",
+        help="Annotation table (file onset offset label), a path or URL: adds each frame's "
+        "event labels.")
     ] = None,
     pool: Annotated[str, typer.Option(
         "--pool", help="Also write a clip table with these poolings, e.g. mean,max,std.")] = "",

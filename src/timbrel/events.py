@@ -93,6 +93,7 @@ def read_events(path: str | os.PathLike[str]) -> tuple[list[Event], list[EventPr
     Parameters
     ----------
     path : str or path-like
+        A local file or a store URL.
 
     Returns
     -------
@@ -118,10 +119,12 @@ def read_events(path: str | os.PathLike[str]) -> tuple[list[Event], list[EventPr
     >>> problems[0].reason
     'onset 2 s is not before offset 1 s'
     """
-    path = Path(path)
+    from . import store
+
+    path = str(path)  # a local path or a store URL (s3://bucket/events.tsv)
     try:
-        text = path.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
+        text = store.read_bytes(path).decode("utf-8-sig")
+    except (OSError, UnicodeDecodeError, store.StoreError) as exc:
         raise ParameterError(f"{path}: cannot read the annotation table ({exc})") from None
     lines = [(i + 1, line) for i, line in enumerate(text.splitlines())
              if line.strip() and not line.lstrip().startswith("#")]

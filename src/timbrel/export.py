@@ -500,8 +500,9 @@ def export(
     layer : {"top", "first", "all"}, default "top"
         Which layer's features a stacked model (``timbrel fit --on``) exports.
     events : str or Path, optional
-        An annotation table (``file onset offset label``, tab- or comma-separated, with
-        or without a header; see :func:`timbrel.events.read_events`): adds an ``events``
+        An annotation table, a local path or a store URL (``file onset offset label``,
+        tab- or comma-separated, with or without a header; see
+        :func:`timbrel.events.read_events`): adds an ``events``
         column with the labels of the events covering each frame's centre. Lines that
         cannot be used (onset at or after offset, negative times, clips the source lacks,
         events past a clip's end) are reported by line number in the summary's
@@ -533,7 +534,7 @@ def export(
     options = {"columns": columns, "pools": _checked_options(columns, compression, pool),
                "compression": compression, "layer": layer,
                "n_features": pipe.n_features(layer), "events": events is not None}
-    annotations = (Path(events), *read_events(events)) if events is not None else None
+    annotations = (str(events), *read_events(events)) if events is not None else None
     _check_config(config, pipe, model)
     dest = store.folder(out)
     if isinstance(dest, store.LocalFolder) and dest.path.exists() and not dest.path.is_dir():
@@ -575,7 +576,7 @@ def _check_config(config: Config | None, pipe: FeaturePipeline, model: str | Pat
 def _export_locked(source: str | Path, model: str | Path, out: store.Folder,
                    pipe: FeaturePipeline,
                    options: dict[str, Any],
-                   annotations: tuple[Path, list[Event], list[EventProblem]] | None, *,
+                   annotations: tuple[str, list[Event], list[EventProblem]] | None, *,
                    workers: int | None, scheduler: str | None, overwrite: bool,
                    allow_outside: bool, progress: bool, t0: float) -> ExportSummary:
     """The body of :func:`export`, run while holding the dataset folder's lock."""
@@ -622,7 +623,7 @@ def _export_locked(source: str | Path, model: str | Path, out: store.Folder,
 
 
 def _attach_events(jobs: list[dict[str, Any]],
-                   annotations: tuple[Path, list[Event], list[EventProblem]]) -> list[str]:
+                   annotations: tuple[str, list[Event], list[EventProblem]]) -> list[str]:
     """Give each job its clip's events; the annotation lines that cannot be used, as text."""
     table, events, problems = annotations
     durations = {j["source"]: float(j["duration_s"]) if "duration_s" in j

@@ -124,7 +124,10 @@ def _reason(exc: BaseException) -> str:
                 "or AWS_PROFILE with ~/.aws/credentials)")
     if isinstance(exc, PermissionError) or "AccessDenied" in text or "Forbidden" in text:
         return f"access denied ({text})"
-    if isinstance(exc, FileNotFoundError) and "bucket" in text.lower():
+    # s3fs says "The specified bucket does not exist" (S3's NoSuchBucket) for a missing
+    # bucket and gives only the path for a missing object, whose name may hold "bucket"
+    if isinstance(exc, FileNotFoundError) and ("NoSuchBucket" in text or
+                                               "bucket does not exist" in text.lower()):
         return "no such bucket"
     if isinstance(exc, FileNotFoundError):
         return "no such object"
