@@ -15,7 +15,7 @@ import uuid
 
 import pytest
 
-from timbrel._errors import CacheError
+from timbrel._errors import CacheError, ParameterError
 from timbrel.store import (
     STORE_LOCK,
     LocalFolder,
@@ -25,6 +25,7 @@ from timbrel.store import (
     is_url,
     join,
     local,
+    output_folder,
     parent,
 )
 
@@ -45,6 +46,19 @@ def test_urls_and_paths_are_told_apart():
     assert parent("s3://b/p/m.csv") == "s3://b/p"
     assert isinstance(folder("s3://b/p"), StoreFolder)
     assert isinstance(folder("file:///tmp/p"), LocalFolder)
+
+
+def test_an_output_folder_may_not_be_a_file(tmp_path):
+    # frames and export write into the folder this gives; a file in its place is refused
+    # before anything is written, a missing or existing folder is fine
+    (tmp_path / "file").write_text("x")
+    with pytest.raises(ParameterError, match=r"file: output exists and is not a folder"):
+        output_folder(tmp_path / "file")
+    assert (tmp_path / "file").read_text() == "x"
+    assert isinstance(output_folder(tmp_path / "new"), LocalFolder)
+    assert not (tmp_path / "new").exists()
+    assert isinstance(output_folder(tmp_path), LocalFolder)
+    assert isinstance(output_folder("memory://bucket/out"), StoreFolder)
 
 
 def test_a_member_is_published_whole_or_not_at_all(place):

@@ -269,9 +269,7 @@ def build_cache(
     """
     t0 = time.perf_counter()
     config = config or Config()
-    dest = store.folder(out)
-    if isinstance(dest, store.LocalFolder) and dest.path.exists() and not dest.path.is_dir():
-        raise ParameterError(f"{out}: output exists and is not a folder")
+    dest = store.output_folder(out)
     items, extra_columns = discover(source, allow_outside=allow_outside)
     dest.prepare(SHARDS)
     with dest.lock(error=CacheError, busy="another `frames` run is writing into this "

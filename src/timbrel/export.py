@@ -536,9 +536,7 @@ def export(
                "n_features": pipe.n_features(layer), "events": events is not None}
     annotations = (str(events), *read_events(events)) if events is not None else None
     _check_config(config, pipe, model)
-    dest = store.folder(out)
-    if isinstance(dest, store.LocalFolder) and dest.path.exists() and not dest.path.is_dir():
-        raise ParameterError(f"{out}: output exists and is not a folder")
+    dest = store.output_folder(out)
     _check_only_ours(dest)  # before the lock file, so a refusal leaves the folder as it was
     dest.prepare()
     with dest.lock(error=ExportError, busy="another export is writing into this "

@@ -43,7 +43,7 @@ from ._atomic import (
     process_alive,
     remove_stale_temporaries,
 )
-from ._errors import TimbrelError
+from ._errors import ParameterError, TimbrelError
 
 __all__ = ["Folder", "LocalFolder", "StoreError", "StoreFolder", "StoreUnreachable",
            "filesystem", "folder",
@@ -543,3 +543,17 @@ def folder(location: str | os.PathLike[str]) -> Folder:
     """The :class:`Folder` of a local path, ``file://`` URL or store URL."""
     text = os.fspath(location)
     return StoreFolder(text) if is_url(text) else LocalFolder(text)
+
+
+def output_folder(location: str | os.PathLike[str]) -> Folder:
+    """The :class:`Folder` a run writes into; a local file in its place is refused.
+
+    Raises
+    ------
+    ParameterError
+        If ``location`` is a local path that exists and is not a folder.
+    """
+    dest = folder(location)
+    if isinstance(dest, LocalFolder) and dest.path.exists() and not dest.path.is_dir():
+        raise ParameterError(f"{os.fspath(location)}: output exists and is not a folder")
+    return dest
