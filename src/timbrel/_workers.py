@@ -182,21 +182,14 @@ def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
                 # write it is blocked in returns), and the caller removes the run's
                 # temporaries next, which only holds if no worker can write any more
                 process.join()
+    # Its workers gone, the pool's manager thread closes its wake-up pipe and ends.
+    # CPython 3.11's exit hook for process pools writes to that pipe without the lock the
+    # thread closes it under: a run that exited while the thread was closing it printed
+    # "Exception ignored in threading._shutdown ... OSError: [Errno 9] Bad file
+    # descriptor" after its own last line (about 1 run in 100). Once the thread has ended
+    # the hook finds the pipe closed and writes nothing.
     if manager is not None:
-        _join_manager(manager)
-
-
-def _join_manager(manager: threading.Thread) -> None:
-    """Wait, at most :data:`STOP_GRACE` seconds, for a pool's manager thread to end.
-
-    Its workers gone, the thread closes its wake-up pipe and ends. CPython 3.11's exit
-    hook for process pools writes to that pipe without the lock the thread closes it
-    under, so a run that exited while the thread was closing it printed "Exception
-    ignored in threading._shutdown … OSError: [Errno 9] Bad file descriptor" after its
-    own last line (about 1 run in 100 stopped at once after ``_stop``). Once the thread
-    has ended the hook finds the pipe closed and writes nothing.
-    """
-    manager.join(STOP_GRACE)
+        manager.join(STOP_GRACE)
 
 
 def _completed(futures: list[concurrent.futures.Future]) -> Iterator[Any]:

@@ -25,6 +25,7 @@ from typing import Any
 
 import numpy as np
 
+from . import store
 from ._errors import ParameterError
 
 __all__ = ["Event", "EventProblem", "SegmentScores", "check_events", "event_roll",
@@ -119,8 +120,6 @@ def read_events(path: str | os.PathLike[str]) -> tuple[list[Event], list[EventPr
     >>> problems[0].reason
     'onset 2 s is not before offset 1 s'
     """
-    from . import store
-
     path = str(path)  # a local path or a store URL (s3://bucket/events.tsv)
     try:
         text = store.read_bytes(path).decode("utf-8-sig")
